@@ -1,0 +1,226 @@
+"""The graph and the supervision, as index arrays ready for sparse linear algebra.
+
+A :class:`Graph` holds the directed edges ``j -> i`` of one dataset sorted by
+target then source, so that the per-edge arrays are, in order, the data of a
+CSR matrix whose rows are targets and whose columns are sources: the layout in
+which ``P(theta) @ x`` is one sparse mat-vec and only the data array changes
+with ``theta``.
+
+:class:`Pairs` holds the preference pairs "preferred ranks above other" as node
+indices with a confidence weight and a split code.
+
+Both are plain frozen containers; loaders (``fitrank.tables``) and the
+generator (``fitrank.generate``) build them, everything downstream reads them.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+SPLITS = ("train", "valid", "test")
+"""Split names; :attr:`Pairs.split` stores their positions in this tuple."""
+
+
+@dataclass(frozen=True, eq=False)
+class Graph:
+    """A directed graph with relation labels, base weights and edge features.
+
+    Attributes:
+      n: number of nodes.
+      src: (E,) int64, source node index j of each edge.
+      dst: (E,) int64, target node index i of each edge; edges are sorted by
+        (dst, src) so ``indptr`` is the CSR row pointer over targets.
+      indptr: (n + 1,) int64, edges into node i are ``indptr[i]:indptr[i+1]``.
+      base: (E,) float64 > 0, base weight b_ij (1 when the data gives none).
+      relation: (E,) int64 codes into ``relation_names``.
+      relation_names: relation labels, in code order (one entry, ``""``, when
+        the data has no relation column).
+      features: (E, f) float64 raw numeric edge features (f may be 0).
+      feature_names: names of the feature columns, length f.
+      node_ids: (n,) original node identifiers, position = node index.
+      teleport: (n,) float64 teleport distribution summing to 1.
+    """
+
+    n: int
+    src: np.ndarray
+    dst: np.ndarray
+    indptr: np.ndarray
+    base: np.ndarray
+    relation: np.ndarray
+    relation_names: tuple[str, ...]
+    features: np.ndarray
+    feature_names: tuple[str, ...]
+    node_ids: np.ndarray
+    teleport: np.ndarray
+    _cache: dict = field(default_factory=dict, repr=False, compare=False)
+
+    @property
+    def num_edges(self) -> int:
+        return int(self.src.shape[0])
+
+    @property
+    def num_relations(self) -> int:
+        return len(self.relation_names)
+
+    def out_degree(self) -> np.ndarray:
+        """(n,) number of out-edges of each node."""
+        return np.bincount(self.src, minlength=self.n)
+
+    def in_degree(self) -> np.ndarray:
+        """(n,) number of in-edges of each node."""
+        return np.diff(self.indptr)
+
+    def relation_out_weight(self) -> np.ndarray:
+        """(n, T) float64: S[j, t] = sum of base weights of j's out-edges of relation t."""
+        if "relation_out_weight" not in self._cache:
+            flat = self.src * self.num_relations + self.relation
+            sums = np.bincount(flat, weights=self.base, minlength=self.n * self.num_relations)
+            self._cache["relation_out_weight"] = sums.reshape(self.n, self.num_relations)
+        return self._cache["relation_out_weight"]
+
+    def out_edges(self) -> tuple[np.ndarray, np.ndarray]:
+        """Edges grouped by source: (order, ptr) with ``order[ptr[j]:ptr[j+1]]``
+        the edge positions whose source is j."""
+        if "out_edges" not in self._cache:
+            order = np.argsort(self.src, kind="stable")
+            ptr = np.zeros(self.n + 1, dtype=np.int64)
+            np.cumsum(np.bincount(self.src, minlength=self.n), out=ptr[1:])
+            self._cache["out_edges"] = (order, ptr)
+        return self._cache["out_edges"]
+
+    def matrix(self, data: np.ndarray) -> sp.csr_matrix:
+        """The (n, n) CSR matrix with ``data`` (E,) on this graph's pattern.
+
+        Repeated (i, j) positions (parallel edges of different relations) are
+        kept as separate entries; the mat-vec sums them.
+        """
+        if "csr_index" not in self._cache:
+            # 32-bit indices when they fit: the mat-vec is memory-bound, so narrower
+            # indices make every PageRank iteration faster.
+            index_type = np.int32 if max(self.n, self.num_edges) < 2**31 - 1 else np.int64
+            self._cache["csr_index"] = (self.src.astype(index_type), self.indptr.astype(index_type))
+        indices, indptr = self._cache["csr_index"]
+        data = np.asarray(data, dtype=np.float64)
+        mat = sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n), copy=False)
+        mat.has_sorted_indices = True
+        return mat
+
+    def fingerprint(self) -> str:
+        """A short hash of everything that defines the graph (structure, weights,
+        relations, features, teleport), used to refuse a saved model built on other data."""
+        h = hashlib.sha256()
+        h.update(np.int64(self.n).tobytes())
+        for arr in (self.src, self.dst, self.base, self.relation, self.features, self.teleport):
+            h.update(np.ascontiguousarray(arr).tobytes())
+        h.update("\x1f".join(self.relation_names).encode())
+        h.update("\x1f".join(self.feature_names).encode())
+        return h.hexdigest()[:16]
+
+
+@dataclass(frozen=True, eq=False)
+class Pairs:
+    """Preference pairs: node ``preferred[q]`` should rank above ``other[q]``.
+
+    Attributes:
+      preferred: (Q,) int64 node indices.
+      other: (Q,) int64 node indices, never equal to ``preferred``.
+      weight: (Q,) float64 > 0 confidence of each pair.
+      split: (Q,) int8 positions in :data:`SPLITS`.
+    """
+
+    preferred: np.ndarray
+    other: np.ndarray
+    weight: np.ndarray
+    split: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.preferred.shape[0])
+
+    def subset(self, name: str) -> "Pairs":
+        """The pairs of one split (``"train"``, ``"valid"`` or ``"test"``)."""
+        keep = self.split == SPLITS.index(name)
+        return Pairs(self.preferred[keep], self.other[keep], self.weight[keep], self.split[keep])
+
+    def nodes(self) -> np.ndarray:
+        """Sorted unique node indices that appear in any pair."""
+        return np.unique(np.concatenate([self.preferred, self.other]))
+
+
+@dataclass(frozen=True, eq=False)
+class Dataset:
+    """A graph with its supervision and where they came from."""
+
+    graph: Graph
+    pairs: Pairs
+    sources: dict = field(default_factory=dict)
+    notes: tuple[str, ...] = ()
+
+
+def build_graph(
+    src: np.ndarray,
+    dst: np.ndarray,
+    n: int,
+    base: np.ndarray | None = None,
+    relation: np.ndarray | None = None,
+    relation_names: tuple[str, ...] = ("",),
+    features: np.ndarray | None = None,
+    feature_names: tuple[str, ...] = (),
+    node_ids: np.ndarray | None = None,
+    teleport: np.ndarray | None = None,
+) -> Graph:
+    """Assemble a :class:`Graph` from unsorted edge arrays (already validated).
+
+    Sorts edges by (target, source), fills defaults (base 1, one relation, no
+    features, ids 0..n-1, uniform teleport) and normalises the teleport vector.
+
+    Args:
+      src, dst: (E,) integer node indices in [0, n).
+      n: number of nodes.
+      base: (E,) positive base weights, default all ones.
+      relation: (E,) integer relation codes, default all zero.
+      relation_names: labels of the relation codes.
+      features: (E, f) numeric features, default (E, 0).
+      feature_names: names of the f feature columns.
+      node_ids: (n,) original ids, default ``arange(n)``.
+      teleport: (n,) non-negative weights, not all zero; default uniform.
+
+    Returns:
+      The graph with edges in CSR (target-major) order.
+    """
+    src = np.asarray(src, dtype=np.int64)
+    dst = np.asarray(dst, dtype=np.int64)
+    num_edges = src.shape[0]
+    base = np.ones(num_edges) if base is None else np.asarray(base, dtype=np.float64)
+    relation = np.zeros(num_edges, dtype=np.int64) if relation is None else np.asarray(relation, dtype=np.int64)
+    features = np.zeros((num_edges, 0)) if features is None else np.asarray(features, dtype=np.float64)
+    if features.ndim == 1:
+        features = features[:, None]
+    order = np.lexsort((src, dst))
+    if np.all(order[1:] > order[:-1]):
+        order = None  # already sorted; avoid copies on large graphs
+    if order is not None:
+        src, dst, base, relation, features = src[order], dst[order], base[order], relation[order], features[order]
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(np.bincount(dst, minlength=n), out=indptr[1:])
+    if teleport is None:
+        teleport = np.full(n, 1.0 / n)
+    else:
+        teleport = np.asarray(teleport, dtype=np.float64)
+        teleport = teleport / teleport.sum()
+    return Graph(
+        n=int(n),
+        src=src,
+        dst=dst,
+        indptr=indptr,
+        base=base,
+        relation=relation,
+        relation_names=tuple(relation_names),
+        features=np.ascontiguousarray(features),
+        feature_names=tuple(feature_names),
+        node_ids=np.arange(n) if node_ids is None else np.asarray(node_ids),
+        teleport=teleport,
+    )

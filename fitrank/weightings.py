@@ -1,0 +1,340 @@
+"""Weightings: how a parameter vector theta turns a graph into a random walk.
+
+Every weighting reduces to two pieces that the solvers share:
+
+* per-edge transition probabilities ``p_e = P(theta)[dst_e, src_e]``, with the
+  columns of P summing to at most 1;
+* the *leak* of each node, ``leak_j = 1 - sum_i P_ij``: the probability mass
+  that leaves node j through no edge (all of it for a dangling node), which the
+  dangling policy sends to the teleport vector (or back to j). The leak is
+  always ``leak = Z @ c(theta)`` for a fixed 0/1 matrix Z (n, L) and a few
+  coefficients c, so reduced models can precompute ``Z^T U``.
+
+The three weightings of DESIGN.md section 2:
+
+=================  ==========================================  ===================
+relation mixture   P = sum_t w_t P_t, w = softmax(theta)        affine in w
+relation scale     a_e = b_e exp(theta_rel(e)), p_e = a_e/d_j   closed-form d_j
+feature log-linear a_e = b_e exp(theta . phi_e), p_e = a_e/d_j  needs all out-edges
+=================  ==========================================  ===================
+
+``transition(theta, tables)`` is a pure JAX function of ``theta`` and a dict of
+arrays; it runs on the whole graph (``weighting.tables``) or on the few edges a
+reduced model needs (``weighting.local_tables(edge_ids)``), which is what makes
+interpolation rows cheap.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from typing import Callable
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from scipy.stats import qmc
+
+from fitrank.graph import Graph
+
+jax.config.update("jax_enable_x64", True)
+
+KINDS = ("mixture", "scale", "features")
+
+
+@dataclass(frozen=True, eq=False)
+class Weighting:
+    """A parameterised random walk on one graph.
+
+    Attributes:
+      kind: ``"mixture"``, ``"scale"`` or ``"features"``.
+      param_names: readable names of the p parameters (``mix:<relation>``,
+        ``scale:<relation>``, ``feat:<feature>``).
+      theta0: (p,) default parameters (the untrained walk; regularisation target).
+      lower, upper: (p,) the box in theta-space that offline sampling covers
+        (for the mixture, sampling covers the simplex of w instead).
+      affine: True when M(theta) = sum_k w_k(theta) M_k with fixed M_k
+        (Galerkin reduction is exact then); see :func:`affine_terms`.
+      closed_form_out_weight: True when a node's out-weight follows from a
+        few per-node sums, so a row of P needs only that row's in-edges.
+      tables: dict of arrays that :attr:`transition` reads for the full graph.
+      leak_basis: (n, L) float64 0/1 matrix Z with leak = Z @ leak_coefficients(theta).
+      transition: ``(theta (p,), tables) -> p (E_sub,)``, pure and differentiable in JAX.
+      leak_coefficients: ``theta (p,) -> c (L,)``, pure JAX.
+      coefficients: ``theta (p,) -> w (K,)`` the affine coefficients
+        (mixture: softmax(theta)); None when not affine.
+      local_tables: ``edge_ids (E_sub,) -> tables`` restricted to those edges
+        (and, for the feature weighting, the out-edges of their sources).
+      feature_center, feature_scale: (f,) the standardisation applied to raw
+        features (feature weighting; empty otherwise).
+    """
+
+    kind: str
+    param_names: tuple[str, ...]
+    theta0: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    affine: bool
+    closed_form_out_weight: bool
+    tables: dict
+    leak_basis: np.ndarray
+    transition: Callable
+    leak_coefficients: Callable
+    coefficients: Callable | None
+    local_tables: Callable
+    feature_center: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    feature_scale: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+    @property
+    def num_params(self) -> int:
+        return len(self.param_names)
+
+    def sample(self, m: int, seed: int = 0) -> np.ndarray:
+        """Quasi-random parameter points covering this weighting's domain.
+
+        Box domains use a scrambled Sobol sequence; the mixture maps Sobol points
+        to the simplex through exponential spacings (uniform Dirichlet(1) for
+        random points) and returns centred log-weights.
+
+        Args:
+          m: number of points.
+          seed: seed of the scrambling.
+
+        Returns:
+          (m, p) float64 theta values.
+
+        References:
+          Sobol, USSR Comput. Math. Math. Phys. 7(4), 1967; the spacing map:
+          Devroye, "Non-Uniform Random Variate Generation", 1986, ch. V.2.
+        """
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", UserWarning)  # Sobol balance note for m not 2^k
+            u = qmc.Sobol(d=self.num_params, scramble=True, seed=seed).random(m)
+        if self.kind == "mixture":
+            spacings = -np.log(np.clip(1.0 - u, 1e-12, 1.0))
+            w = spacings / spacings.sum(axis=1, keepdims=True)
+            logw = np.log(np.maximum(w, 1e-9))
+            return logw - logw.mean(axis=1, keepdims=True)
+        return self.lower + u * (self.upper - self.lower)
+
+    def named(self, theta) -> dict[str, float]:
+        """``{parameter name: value}`` for a (p,) theta."""
+        return {name: float(value) for name, value in zip(self.param_names, np.asarray(theta))}
+
+
+def make_weighting(kind: str, graph: Graph, **options) -> Weighting:
+    """The weighting called ``kind`` ("mixture", "scale" or "features") on ``graph``."""
+    builders = {"mixture": relation_mixture, "scale": relation_scale, "features": feature_loglinear}
+    if kind not in builders:
+        raise ValueError(f"unknown weighting '{kind}'; choose one of {', '.join(KINDS)}")
+    return builders[kind](graph, **options)
+
+
+def _relation_labels(graph: Graph) -> list[str]:
+    return [name if name != "" else "edge" for name in graph.relation_names]
+
+
+def _sources_of(graph: Graph, edge_ids: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Distinct sources J of the given edges and each edge's slot in J."""
+    sources, slot = np.unique(graph.src[edge_ids], return_inverse=True)
+    return sources, slot.astype(np.int64)
+
+
+# --------------------------------------------------------------------------- mixture
+
+
+def relation_mixture(graph: Graph) -> Weighting:
+    """Relation mixture: P(w) = sum_t w_t P_t with w = softmax(theta).
+
+    P_t is the walk on relation t alone, its columns normalised by the node's
+    relation-t out-weight; a node with no out-edge of relation t leaks w_t
+    (which the dangling policy routes). M(w) is affine in w.
+    """
+    out_weight = graph.relation_out_weight()  # (n, T)
+    unit = graph.base / out_weight[graph.src, graph.relation]  # p_e of P_rel(e)
+    lacks = (out_weight <= 0).astype(np.float64)  # (n, T): node lacks relation t
+
+    def local_tables(edge_ids):
+        edge_ids = np.asarray(edge_ids, dtype=np.int64)
+        return {"rel": graph.relation[edge_ids], "unit": unit[edge_ids]}
+
+    def transition(theta, tables):
+        return jax.nn.softmax(theta)[tables["rel"]] * tables["unit"]
+
+    num_rel = graph.num_relations
+    return Weighting(
+        kind="mixture",
+        param_names=tuple(f"mix:{label}" for label in _relation_labels(graph)),
+        theta0=np.zeros(num_rel),
+        lower=np.full(num_rel, -np.inf),
+        upper=np.full(num_rel, np.inf),
+        affine=True,
+        closed_form_out_weight=True,
+        tables=local_tables(np.arange(graph.num_edges)),
+        leak_basis=lacks,
+        transition=transition,
+        leak_coefficients=jax.nn.softmax,
+        coefficients=jax.nn.softmax,
+        local_tables=local_tables,
+    )
+
+
+def affine_terms(graph: Graph, weighting: Weighting) -> list[np.ndarray]:
+    """The fixed per-edge transition data of an affine weighting.
+
+    Returns:
+      K arrays of shape (E,): ``P(theta) = sum_k coefficients(theta)[k] * matrix(terms[k])``
+      and ``leak(theta) = sum_k coefficients(theta)[k] * leak_basis[:, k]``.
+    """
+    if not weighting.affine:
+        raise ValueError(f"the {weighting.kind} weighting is not affine in its parameters")
+    unit = np.asarray(weighting.tables["unit"])
+    rel = np.asarray(weighting.tables["rel"])
+    return [np.where(rel == t, unit, 0.0) for t in range(graph.num_relations)]
+
+
+# --------------------------------------------------------------------------- scale
+
+
+def relation_scale(graph: Graph, bound: float = 2.5) -> Weighting:
+    """Relation scale: a_e = b_e exp(theta_rel(e)), p_e = a_e / d_src(e).
+
+    The out-weight d_j = sum_t exp(theta_t) S[j, t] has a closed form from the
+    per-node, per-relation sums S, so a row needs only its in-edges and S of
+    their sources. Adding a constant to theta changes nothing (the walk
+    normalises it away); regularisation towards theta0 pins it.
+
+    Args:
+      graph: the graph.
+      bound: sampling box is [-bound, bound]^T (a weight ratio of e^(2 bound)).
+    """
+    out_weight = graph.relation_out_weight()
+
+    def local_tables(edge_ids):
+        edge_ids = np.asarray(edge_ids, dtype=np.int64)
+        sources, slot = _sources_of(graph, edge_ids)
+        return {
+            "rel": graph.relation[edge_ids],
+            "base": graph.base[edge_ids],
+            "slot": slot,
+            "out_weight": out_weight[sources],
+        }
+
+    def transition(theta, tables):
+        scale = jnp.exp(theta - jax.lax.stop_gradient(jnp.max(theta)))
+        out = tables["out_weight"] @ scale
+        return tables["base"] * scale[tables["rel"]] / out[tables["slot"]]
+
+    num_rel = graph.num_relations
+    full = {"rel": graph.relation, "base": graph.base, "slot": graph.src, "out_weight": out_weight}
+    return Weighting(
+        kind="scale",
+        param_names=tuple(f"scale:{label}" for label in _relation_labels(graph)),
+        theta0=np.zeros(num_rel),
+        lower=np.full(num_rel, -bound),
+        upper=np.full(num_rel, bound),
+        affine=False,
+        closed_form_out_weight=True,
+        tables=full,
+        leak_basis=_dangling_basis(graph),
+        transition=transition,
+        leak_coefficients=_one_coefficient,
+        coefficients=None,
+        local_tables=local_tables,
+    )
+
+
+def _dangling_basis(graph: Graph) -> np.ndarray:
+    return (graph.out_degree() == 0).astype(np.float64)[:, None]
+
+
+def _one_coefficient(theta):
+    return jnp.ones(1, dtype=theta.dtype)
+
+
+# --------------------------------------------------------------------------- features
+
+
+def feature_loglinear(graph: Graph, bound: float = 2.0) -> Weighting:
+    """Feature log-linear: a_e = b_e exp(theta . phi_e), p_e = a_e / d_src(e).
+
+    Features are standardised over edges (mean 0, standard deviation 1; a
+    constant column is only centred) so that one unit of theta means the same
+    for every feature. The out-weight of j needs every out-edge of j; it is
+    computed as a log-sum-exp per source for stability with large features.
+
+    Args:
+      graph: the graph; needs at least one feature column.
+      bound: sampling box is [-bound, bound]^f.
+    """
+    if graph.features.shape[1] == 0:
+        raise ValueError("the features weighting needs numeric edge feature columns; the edge table has none")
+    center = graph.features.mean(axis=0)
+    spread = graph.features.std(axis=0)
+    spread = np.where(spread > 0, spread, 1.0)
+    standard = (graph.features - center) / spread
+    log_base = np.log(graph.base)
+
+    def local_tables(edge_ids):
+        edge_ids = np.asarray(edge_ids, dtype=np.int64)
+        sources = np.unique(graph.src[edge_ids])
+        order, ptr = graph.out_edges()
+        counts = ptr[sources + 1] - ptr[sources]
+        starts = np.repeat(ptr[sources], counts)
+        offsets = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
+        out_ids = order[starts + offsets]  # all out-edges of the sources, grouped by source
+        out_slot = np.repeat(np.arange(sources.size), counts)
+        lookup = np.full(graph.num_edges, -1, dtype=np.int64)
+        lookup[out_ids] = np.arange(out_ids.size)
+        return {
+            "log_base": log_base[out_ids],
+            "feat": standard[out_ids],
+            "slot": out_slot,
+            "slots": np.zeros(sources.size),
+            "target": lookup[edge_ids],
+        }
+
+    def transition(theta, tables):
+        score = tables["log_base"] + tables["feat"] @ theta
+        num = tables["slots"].shape[0]
+        peak = jax.lax.stop_gradient(jax.ops.segment_max(score, tables["slot"], num_segments=num))
+        shifted = jnp.exp(score - peak[tables["slot"]])
+        total = jax.ops.segment_sum(shifted, tables["slot"], num_segments=num)
+        p_out = shifted / total[tables["slot"]]
+        target = tables.get("target")
+        return p_out if target is None else p_out[target]
+
+    f = standard.shape[1]
+    full = {"log_base": log_base, "feat": standard, "slot": graph.src, "slots": np.zeros(graph.n)}
+    return Weighting(
+        kind="features",
+        param_names=tuple(f"feat:{name}" for name in graph.feature_names),
+        theta0=np.zeros(f),
+        lower=np.full(f, -bound),
+        upper=np.full(f, bound),
+        affine=False,
+        closed_form_out_weight=False,
+        tables=full,
+        leak_basis=_dangling_basis(graph),
+        transition=transition,
+        leak_coefficients=_one_coefficient,
+        coefficients=None,
+        local_tables=local_tables,
+        feature_center=center,
+        feature_scale=spread,
+    )
+
+
+def row_cost(graph: Graph, weighting: Weighting) -> np.ndarray:
+    """(n,) edges read to form row i of P(theta) on its own.
+
+    With a closed-form out-weight a row needs its in-edges; otherwise also every
+    out-edge of every in-neighbour (counted once per distinct in-neighbour).
+    """
+    in_degree = graph.in_degree().astype(np.int64)
+    if weighting.closed_form_out_weight:
+        return in_degree
+    pair_key = np.unique(graph.dst * graph.n + graph.src)  # distinct (target, source) pairs
+    rows, cols = pair_key // graph.n, pair_key % graph.n
+    out_degree = graph.out_degree()
+    return np.bincount(rows, weights=out_degree[cols], minlength=graph.n).astype(np.int64)
