@@ -26,6 +26,8 @@ References:
 
 from __future__ import annotations
 
+import hashlib
+import json
 import time
 import weakref
 from dataclasses import dataclass
@@ -397,3 +399,52 @@ def adjoint_gradient(
     _, pullback = jax.vjp(walk_terms, jnp.asarray(theta, dtype=jnp.float64))
     (grad,) = pullback((jnp.asarray(edge_cot), jnp.asarray(leak_cot)))
     return alpha * np.asarray(grad), report
+
+
+# ----------------------------------------------------------------------------- problem
+
+
+@dataclass(frozen=True, eq=False)
+class PageRankProblem:
+    """One graph, weighting, damping, teleport and dangling policy: x(theta) is defined.
+
+    Reduced models are built for, and saved with the fingerprint of, one problem.
+
+    Attributes:
+      graph: the graph.
+      weighting: a weighting built on ``graph``.
+      damping: alpha in (0, 1).
+      teleport: (n,) validated teleport distribution.
+      dangling: ``"teleport"`` or ``"self"``.
+    """
+
+    graph: Graph
+    weighting: Weighting
+    damping: float = 0.85
+    teleport: np.ndarray | None = None
+    dangling: str = "teleport"
+
+    def __post_init__(self):
+        if not 0.0 < self.damping < 1.0:
+            raise FitrankInputError(f"damping must be strictly between 0 and 1, got {self.damping}")
+        if self.dangling not in DANGLING_POLICIES:
+            raise FitrankInputError(f"dangling policy must be one of {DANGLING_POLICIES}, got '{self.dangling}'")
+        v = self.graph.teleport if self.teleport is None else self.teleport
+        object.__setattr__(self, "teleport", check_teleport(v, self.graph.n))
+
+    def operator(self, theta) -> WalkOperator:
+        """M(theta) as a :class:`WalkOperator`."""
+        return walk_operator(self.graph, self.weighting, theta, damping=self.damping, teleport=self.teleport,
+                             dangling=self.dangling)
+
+    def solve(self, theta, **solver_options) -> PageRankResult:
+        """x(theta); keyword options as for :func:`solve_operator`."""
+        return solve_operator(self.operator(theta), **solver_options)
+
+    def fingerprint(self) -> str:
+        """A short hash of the graph, the weighting (kind and options), damping, teleport and policy."""
+        h = hashlib.sha256(self.graph.fingerprint().encode())
+        h.update(json.dumps([self.weighting.kind, self.weighting.options, self.damping, self.dangling],
+                            sort_keys=True, default=str).encode())
+        h.update(np.ascontiguousarray(self.teleport).tobytes())
+        return h.hexdigest()[:16]

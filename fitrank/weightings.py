@@ -26,6 +26,7 @@ interpolation rows cheap.
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 from dataclasses import dataclass, field
 from typing import Callable
@@ -67,6 +68,8 @@ class Weighting:
         (and, for the feature weighting, the out-edges of their sources).
       feature_center, feature_scale: (f,) the standardisation applied to raw
         features (feature weighting; empty otherwise).
+      options: the keyword options it was built with; ``make_weighting(kind,
+        graph, **options)`` rebuilds it (how worker processes get it).
     """
 
     kind: str
@@ -84,6 +87,7 @@ class Weighting:
     local_tables: Callable
     feature_center: np.ndarray = field(default_factory=lambda: np.zeros(0))
     feature_scale: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    options: dict = field(default_factory=dict)
 
     @property
     def num_params(self) -> int:
@@ -127,7 +131,7 @@ def make_weighting(kind: str, graph: Graph, **options) -> Weighting:
     builders = {"mixture": relation_mixture, "scale": relation_scale, "features": feature_loglinear}
     if kind not in builders:
         raise ValueError(f"unknown weighting '{kind}'; choose one of {', '.join(KINDS)}")
-    return builders[kind](graph, **options)
+    return dataclasses.replace(builders[kind](graph, **options), options=dict(options))
 
 
 def _relation_labels(graph: Graph) -> list[str]:

@@ -1,0 +1,140 @@
+"""Proper orthogonal decomposition of a snapshot matrix.
+
+Two paths give the same basis: a thin SVD of X (n, m) when it fits in memory,
+and the method of snapshots for large n, which forms the m x m Gram matrix
+X^T X and U = X V S^{-1} by streaming row blocks of X (e.g. from a memory-mapped
+file), so X is never held twice. The Gram path squares the condition number:
+singular values below about sqrt(machine epsilon) * s_1 are not resolved, which
+is why it stops the basis there.
+
+References:
+  Sirovich, "Turbulence and the dynamics of coherent structures", Quart. Appl.
+  Math. 45(3), 1987 (method of snapshots); Holmes, Lumley & Berkooz,
+  "Turbulence, Coherent Structures, Dynamical Systems and Symmetry", 1996 (POD).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass(frozen=True, eq=False)
+class PodBasis:
+    """Leading left singular vectors of a snapshot matrix.
+
+    Attributes:
+      vectors: (n, k) orthonormal columns U.
+      singular_values: (m,) all singular values of X, descending (those the
+        Gram path cannot resolve are reported as 0).
+      lost_energy: 1 - sum_{i<=k} s_i^2 / sum_i s_i^2.
+    """
+
+    vectors: np.ndarray
+    singular_values: np.ndarray
+    lost_energy: float
+
+    @property
+    def rank(self) -> int:
+        return int(self.vectors.shape[1])
+
+
+def choose_rank(singular_values: np.ndarray, rank: int | None = None, energy: float | None = None,
+                max_rank: int | None = None) -> int:
+    """Basis size: ``rank`` if given, else the smallest k whose lost energy is <= ``energy``.
+
+    Args:
+      singular_values: (m,) descending.
+      rank: a fixed k (capped at the number of non-zero singular values).
+      energy: tolerance on 1 - sum_{i<=k} s_i^2 / sum s_i^2.
+      max_rank: upper cap on k.
+
+    Returns:
+      k >= 1.
+    """
+    s2 = np.asarray(singular_values, dtype=np.float64) ** 2
+    usable = int(np.sum(s2 > 0))
+    if rank is not None:
+        k = min(int(rank), usable)
+    else:
+        tol = 1e-10 if energy is None else float(energy)
+        lost = 1.0 - np.cumsum(s2) / s2.sum()
+        k = int(np.argmax(lost <= tol)) + 1 if np.any(lost <= tol) else usable
+    if max_rank is not None:
+        k = min(k, int(max_rank))
+    return max(1, k)
+
+
+def _lost(singular_values: np.ndarray, k: int) -> float:
+    s2 = singular_values ** 2
+    return float(max(0.0, 1.0 - s2[:k].sum() / s2.sum()))
+
+
+def pod_basis(snapshots: np.ndarray, rank: int | None = None, energy: float | None = None,
+              max_rank: int | None = None, method: str = "auto", block_rows: int = 65_536) -> PodBasis:
+    """POD basis of the columns of ``snapshots``.
+
+    Args:
+      snapshots: (n, m) array or ``np.memmap``.
+      rank, energy, max_rank: see :func:`choose_rank`.
+      method: ``"svd"`` (thin SVD in memory), ``"gram"`` (method of snapshots,
+        streamed in row blocks) or ``"auto"`` (SVD when X is under ~2 GB).
+      block_rows: rows per block on the Gram path.
+
+    Returns:
+      :class:`PodBasis`.
+    """
+    n, m = snapshots.shape
+    if method == "auto":
+        method = "svd" if n * m * 8 < 2e9 and not isinstance(snapshots, np.memmap) else "gram"
+    if method == "svd":
+        u, s, _ = np.linalg.svd(np.asarray(snapshots), full_matrices=False)
+        k = choose_rank(s, rank, energy, max_rank)
+        return PodBasis(np.ascontiguousarray(u[:, :k]), s, _lost(s, k))
+    if method != "gram":
+        raise ValueError(f"POD method must be 'svd', 'gram' or 'auto', got '{method}'")
+    gram = np.zeros((m, m))
+    for start in range(0, n, block_rows):
+        block = np.asarray(snapshots[start:start + block_rows])
+        gram += block.T @ block
+    eigval, eigvec = np.linalg.eigh(gram)
+    eigval, eigvec = eigval[::-1], eigvec[:, ::-1]
+    resolvable = eigval > eigval[0] * 1e-14  # the Gram path squares the condition number
+    s = np.where(resolvable, np.sqrt(np.clip(eigval, 0.0, None)), 0.0)
+    k = choose_rank(s, rank, energy, max_rank)
+    coef = eigvec[:, :k] / s[:k]
+    vectors = np.empty((n, k))
+    for start in range(0, n, block_rows):
+        vectors[start:start + block_rows] = np.asarray(snapshots[start:start + block_rows]) @ coef
+    # one re-orthonormalisation pass removes the loss of orthogonality of U = X V S^-1
+    vectors, r = np.linalg.qr(vectors)
+    vectors *= np.sign(np.diag(r))
+    return PodBasis(vectors, s, _lost(s, k))
+
+
+def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = None, energy: float | None = None,
+                 max_rank: int | None = None) -> PodBasis:
+    """Basis of the old snapshots plus new ones, from the old basis alone.
+
+    The old snapshot matrix is represented by U diag(s_k) (exact up to the
+    truncated tail), so the SVD of [U diag(s_k), X_new] (n, k + m_new) updates
+    the basis without the old snapshots.
+
+    Args:
+      basis: the current basis.
+      new_vectors: (n, m_new) new snapshots.
+      rank, energy, max_rank: see :func:`choose_rank`; rank None keeps the energy rule.
+
+    Returns:
+      The updated :class:`PodBasis` (its singular values are those of the stacked matrix).
+
+    References:
+      Brand, "Fast low-rank modifications of the thin singular value
+      decomposition", Linear Algebra Appl. 415, 2006.
+    """
+    k = basis.rank
+    stacked = np.hstack([basis.vectors * basis.singular_values[:k], np.atleast_2d(new_vectors.T).T])
+    u, s, _ = np.linalg.svd(stacked, full_matrices=False)
+    new_k = choose_rank(s, rank, energy, max_rank)
+    return PodBasis(np.ascontiguousarray(u[:, :new_k]), s, _lost(s, new_k))

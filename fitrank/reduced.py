@@ -1,0 +1,311 @@
+"""Reduced models: build once offline, evaluate in microseconds to milliseconds online.
+
+A :class:`ReducedModel` approximates x(theta) by U c(theta) with a POD basis U
+(n, k) and a small solve for c: Galerkin (affine weightings) or DEIM-style
+interpolation (any weighting). Online work never touches an n-sized array when
+only the entries of a few nodes are needed (:meth:`ReducedModel.scorer`).
+Models are saved to one ``.npz`` file with the fingerprint of the problem they
+were built for; loading against other data is refused.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import tempfile
+import time
+from concurrent.futures import Executor
+from dataclasses import asdict, dataclass, field, replace
+from typing import Callable
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from fitrank.basis import PodBasis, extend_basis, pod_basis
+from fitrank.errors import FitrankInputError, ModelMismatchError
+from fitrank.galerkin import galerkin_arrays, galerkin_coefficients
+from fitrank.interpolation import choose_rows, interpolation_arrays, interpolation_coefficients
+from fitrank.pagerank import PageRankProblem, certified_bound
+from fitrank.snapshots import solve_snapshots
+
+METHODS = ("auto", "galerkin", "interpolation")
+FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class ReductionSettings:
+    """How to build a reduced model.
+
+    Attributes:
+      method: ``"galerkin"`` (affine weightings only), ``"interpolation"``, or
+        ``"auto"`` (Galerkin when the weighting is affine).
+      samples: parameter points m for snapshots (quasi-random, seeded).
+      rank: fixed basis size k; None chooses k by ``energy``.
+      energy: largest allowed lost energy 1 - sum_{i<=k} s_i^2 / sum s_i^2.
+      max_rank: cap on k.
+      rows: interpolation rows r (default 2 k).
+      gamma: cost weight of the row choice (0: pure pivoted QR).
+      edge_budget: most edges the interpolation rows may need (None: no budget).
+      probes: parameter points stacked for the row choice (default enough for r).
+      seed: seed of sampling.
+      snapshot_tol: certified L1 error of each snapshot solve.
+      snapshot_path: file for a memory-mapped snapshot matrix (None: in memory).
+    """
+
+    method: str = "auto"
+    samples: int = 128
+    rank: int | None = None
+    energy: float = 1e-10
+    max_rank: int = 120
+    rows: int | None = None
+    gamma: float = 0.0
+    edge_budget: int | None = None
+    probes: int | None = None
+    seed: int = 0
+    snapshot_tol: float = 1e-10
+    snapshot_path: str | None = None
+
+    def resolved_method(self, affine: bool) -> str:
+        if self.method not in METHODS:
+            raise FitrankInputError(f"reduction method must be one of {METHODS}, got '{self.method}'")
+        if self.method == "auto":
+            return "galerkin" if affine else "interpolation"
+        if self.method == "galerkin" and not affine:
+            raise FitrankInputError(
+                "Galerkin reduction needs a weighting that is affine in its parameters (the relation mixture); "
+                "use method 'interpolation' for this weighting")
+        return self.method
+
+
+@dataclass(frozen=True, eq=False)
+class Scorer:
+    """PageRank values at a fixed node set, as a pure JAX function.
+
+    Attributes:
+      fn: ``fn(theta (p,), arrays) -> (S,)`` values x at ``nodes``; jit-able and
+        differentiable. Pass ``arrays`` as an argument of the jitted function
+        (closed-over large arrays get constant-folded by XLA).
+      arrays: the pytree ``fn`` reads.
+      nodes: (S,) node indices.
+    """
+
+    fn: Callable
+    arrays: dict
+    nodes: np.ndarray
+
+
+@dataclass(frozen=True, eq=False)
+class ReducedModel:
+    """A reduced model of one :class:`~fitrank.pagerank.PageRankProblem`.
+
+    Attributes:
+      problem: the full problem it approximates.
+      settings: how it was built.
+      method: ``"galerkin"`` or ``"interpolation"``.
+      basis: the POD basis (U (n, k), singular values).
+      rows: (r,) interpolation rows (empty for Galerkin).
+      thetas: (m, p) parameter points whose snapshots span the basis.
+      arrays: online arrays of the small solve.
+      info: offline report (k, rows, edges touched, timings, ...).
+    """
+
+    problem: PageRankProblem
+    settings: ReductionSettings
+    method: str
+    basis: PodBasis
+    rows: np.ndarray
+    thetas: np.ndarray
+    arrays: dict
+    info: dict
+    _jitted: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def rank(self) -> int:
+        return self.basis.rank
+
+    @property
+    def coefficient_fn(self) -> Callable:
+        """``(theta, arrays) -> c (k,)``: the pure JAX online solve."""
+        if "coefficients" not in self._jitted:
+            self._jitted["coefficients"] = _coefficient_fn(self.problem, self.method)
+        return self._jitted["coefficients"]
+
+    def coefficients(self, theta) -> np.ndarray:
+        """(k,) reduced coefficients c(theta)."""
+        if "coefficients_jit" not in self._jitted:
+            self._jitted["coefficients_jit"] = jax.jit(self.coefficient_fn)
+        return np.asarray(self._jitted["coefficients_jit"](jnp.asarray(theta, dtype=jnp.float64), self.arrays))
+
+    def vector(self, theta) -> np.ndarray:
+        """(n,) the reduced approximation U c(theta) of the PageRank vector (sums to 1)."""
+        return self.basis.vectors @ self.coefficients(theta)
+
+    def scorer(self, nodes) -> Scorer:
+        """A :class:`Scorer` returning x at ``nodes`` (S,) without n-sized work."""
+        nodes = np.asarray(nodes, dtype=np.int64)
+        solve = self.coefficient_fn
+
+        def values(theta, arrays):
+            return arrays["basis_nodes"] @ solve(theta, arrays["solve"])
+
+        return Scorer(values, {"basis_nodes": self.basis.vectors[nodes], "solve": self.arrays}, nodes)
+
+    def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
+        """Certified ||x(theta) - U c(theta)||_1 (one full sparse mat-vec)."""
+        y = self.vector(theta) if vector is None else vector
+        return certified_bound(self.problem.operator(theta), y)
+
+    def save(self, path) -> str:
+        """Write the model to one ``.npz`` file (atomically; no pickled objects).
+
+        Returns:
+          the path written.
+        """
+        path = os.fspath(path)
+        meta = {
+            "format": FORMAT_VERSION,
+            "fingerprint": self.problem.fingerprint(),
+            "method": self.method,
+            "settings": asdict(self.settings),
+            "info": self.info,
+            "param_names": list(self.problem.weighting.param_names),
+        }
+        folder = os.path.dirname(os.path.abspath(path))
+        os.makedirs(folder, exist_ok=True)
+        handle, tmp = tempfile.mkstemp(prefix=".model-", suffix=".npz", dir=folder)
+        os.close(handle)
+        try:
+            np.savez(tmp, meta=np.array(json.dumps(meta)), vectors=self.basis.vectors,
+                     singular_values=self.basis.singular_values, lost_energy=np.array(self.basis.lost_energy),
+                     rows=self.rows, thetas=self.thetas)
+            os.replace(tmp, path)
+        finally:
+            if os.path.exists(tmp):
+                os.remove(tmp)
+        return path
+
+
+def _coefficient_fn(problem: PageRankProblem, method: str) -> Callable:
+    weighting = problem.weighting
+    if method == "galerkin":
+        coefficients = weighting.coefficients
+
+        def galerkin(theta, arrays):
+            return galerkin_coefficients(coefficients(theta), arrays)
+
+        return galerkin
+    static = (problem.damping, problem.dangling, weighting.transition, weighting.leak_coefficients,
+              weighting.coefficients if weighting.affine else None)
+    return functools.partial(interpolation_coefficients, problem_static=static)
+
+
+def _assemble(problem: PageRankProblem, settings: ReductionSettings, basis: PodBasis, thetas: np.ndarray,
+              method: str, timings: dict, rows: np.ndarray | None = None) -> ReducedModel:
+    """Online arrays for a basis: Galerkin terms, or rows (chosen unless given) and their local subgraph."""
+    start = time.perf_counter()
+    vectors = basis.vectors
+    info = {"k": basis.rank, "samples": int(thetas.shape[0]), "lost_energy": basis.lost_energy,
+            "singular_values": [float(s) for s in basis.singular_values]}
+    if method == "galerkin":
+        arrays, rows = galerkin_arrays(problem, vectors), np.zeros(0, dtype=np.int64)
+        info.update(rows=0, edges_touched=0)
+    else:
+        if rows is None:
+            count = settings.rows or 2 * basis.rank
+            choice = choose_rows(problem, vectors, max(count, basis.rank), probes=settings.probes,
+                                 gamma=settings.gamma, budget=settings.edge_budget, seed=settings.seed)
+            rows = choice.rows
+            info["row_candidates_scored"] = choice.candidates_scored
+        if rows.size < basis.rank:
+            raise FitrankInputError(
+                f"only {rows.size} interpolation rows fit (k = {basis.rank}); raise reduction.edge_budget, "
+                "lower reduction.gamma or use a smaller basis")
+        arrays, touched = interpolation_arrays(problem, vectors, rows)
+        info.update(rows=int(rows.size), edges_touched=touched,
+                    edges_touched_fraction=touched / max(1, problem.graph.num_edges))
+    timings = dict(timings, assemble_s=time.perf_counter() - start)
+    info["timings"] = timings
+    info["offline_s"] = float(sum(timings.values()))
+    return ReducedModel(problem, settings, method, basis, np.asarray(rows, dtype=np.int64), thetas, arrays, info)
+
+
+def build_reduced_model(problem: PageRankProblem, settings: ReductionSettings = ReductionSettings(), *,
+                        executor: Executor | None = None, progress: bool = True) -> ReducedModel:
+    """Sample, solve snapshots, compute the POD basis and assemble the online solve.
+
+    Args:
+      problem: the full problem.
+      settings: :class:`ReductionSettings`.
+      executor: where snapshot solves run (any ``concurrent.futures.Executor``; None: here).
+      progress: show progress bars.
+
+    Returns:
+      The :class:`ReducedModel`; ``model.info`` reports k, singular values,
+      rows, edges touched and offline timings.
+    """
+    method = settings.resolved_method(problem.weighting.affine)
+    timings = {}
+    start = time.perf_counter()
+    thetas = problem.weighting.sample(settings.samples, seed=settings.seed)
+    out = None
+    if settings.snapshot_path:
+        out = np.lib.format.open_memmap(settings.snapshot_path, mode="w+", dtype=np.float64,
+                                        shape=(problem.graph.n, thetas.shape[0]))
+    snapshots = solve_snapshots(problem, thetas, tol=settings.snapshot_tol, executor=executor, out=out,
+                                progress=progress)
+    timings["snapshots_s"] = time.perf_counter() - start
+    start = time.perf_counter()
+    basis = pod_basis(snapshots, rank=settings.rank, energy=settings.energy, max_rank=settings.max_rank)
+    timings["basis_s"] = time.perf_counter() - start
+    return _assemble(problem, settings, basis, thetas, method, timings)
+
+
+def enrich(model: ReducedModel, thetas: np.ndarray, *, executor: Executor | None = None,
+           progress: bool = False) -> ReducedModel:
+    """The model with full solves at ``thetas`` (m_new, p) added to its snapshots.
+
+    The basis is updated from the old one and the new snapshots; interpolation
+    rows are chosen again for the new basis.
+    """
+    thetas = np.atleast_2d(np.asarray(thetas, dtype=np.float64))
+    start = time.perf_counter()
+    new = solve_snapshots(model.problem, thetas, tol=model.settings.snapshot_tol, executor=executor,
+                          progress=progress)
+    settings = model.settings
+    max_rank = max(settings.max_rank, model.rank + thetas.shape[0]) if settings.rank is None else None
+    basis = extend_basis(model.basis, new, rank=None if settings.rank is None else model.rank + thetas.shape[0],
+                         energy=settings.energy, max_rank=max_rank)
+    timings = {"snapshots_s": 0.0, "enrich_s": time.perf_counter() - start}
+    return _assemble(model.problem, settings, basis, np.vstack([model.thetas, thetas]), model.method, timings)
+
+
+def load_reduced_model(path, problem: PageRankProblem) -> ReducedModel:
+    """Load a model saved by :meth:`ReducedModel.save` for ``problem``.
+
+    Raises:
+      ModelMismatchError: the file was built for other data, weighting, damping,
+        teleport or dangling policy.
+      FitrankInputError: the file is missing or not a fitrank model.
+    """
+    path = os.fspath(path)
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            meta = json.loads(str(data["meta"]))
+            stored = {name: data[name] for name in ("vectors", "singular_values", "lost_energy", "rows", "thetas")}
+    except (OSError, KeyError, ValueError) as err:
+        raise FitrankInputError(f"{path}: not a readable fitrank reduced model ({err})") from None
+    if meta.get("format") != FORMAT_VERSION:
+        raise FitrankInputError(f"{path}: model format {meta.get('format')} is not supported (expected {FORMAT_VERSION})")
+    expected = problem.fingerprint()
+    if meta["fingerprint"] != expected:
+        raise ModelMismatchError(
+            f"{path}: this reduced model was built for other data or settings (fingerprint {meta['fingerprint']}, "
+            f"current {expected}); rebuild it with 'fitrank build' or point to the matching model")
+    settings = ReductionSettings(**meta["settings"])
+    basis = PodBasis(stored["vectors"], stored["singular_values"], float(stored["lost_energy"]))
+    timings = {"load_s": 0.0}
+    model = _assemble(problem, settings, basis, stored["thetas"], meta["method"], timings,
+                      rows=stored["rows"] if meta["method"] == "interpolation" else None)
+    return replace(model, info=dict(meta["info"], loaded_from=path))
