@@ -259,7 +259,7 @@ def _one_coefficient(theta):
 # --------------------------------------------------------------------------- features
 
 
-def feature_loglinear(graph: Graph, bound: float = 2.0) -> Weighting:
+def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
     """Feature log-linear: a_e = b_e exp(theta . phi_e), p_e = a_e / d_src(e).
 
     Features are standardised over edges (mean 0, standard deviation 1; a
@@ -269,7 +269,13 @@ def feature_loglinear(graph: Graph, bound: float = 2.0) -> Weighting:
 
     Args:
       graph: the graph; needs at least one feature column.
-      bound: sampling box is [-bound, bound]^f.
+      bound: sampling box is [-bound, bound]^f; default 0.7 / sqrt(f), so that
+        for uncorrelated standardised features the combined log-weight
+        theta . phi has standard deviation at most 0.7 across the box. The box
+        only sets where the reduced model is built: a wider box needs a larger
+        basis for the same accuracy (measured: at f = 4, k = 100, half-width 0.5
+        gives top-100 Kendall tau 0.998, 0.35 gives 0.999). Training may leave
+        the box; the full check with enrichment follows it there.
     """
     if graph.features.shape[1] == 0:
         raise ValueError("the features weighting needs numeric edge feature columns; the edge table has none")
@@ -309,6 +315,7 @@ def feature_loglinear(graph: Graph, bound: float = 2.0) -> Weighting:
         return p_out if target is None else p_out[target]
 
     f = standard.shape[1]
+    bound = 0.7 / np.sqrt(f) if bound is None else float(bound)
     full = {"log_base": log_base, "feat": standard, "slot": graph.src, "slots": np.zeros(graph.n)}
     return Weighting(
         kind="features",

@@ -1,0 +1,201 @@
+"""Reduced models against full solves, scipy's pivoted QR and finite differences."""
+
+from __future__ import annotations
+
+import functools
+from concurrent.futures import ThreadPoolExecutor
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+import scipy.linalg
+from scipy.stats import kendalltau
+
+from fitrank.basis import extend_basis, pod_basis
+from fitrank.errors import FitrankInputError, ModelMismatchError
+from fitrank.interpolation import RowChoice, select_rows
+from fitrank.pagerank import PageRankProblem
+from fitrank.reduced import ReductionSettings, build_reduced_model, enrich, load_reduced_model
+from fitrank.snapshots import solve_snapshots
+from fitrank.weightings import make_weighting, row_cost
+
+from tests._datasets import generated
+
+CASES = [("mixture", "galerkin"), ("mixture", "interpolation"), ("scale", "interpolation"),
+         ("features", "interpolation")]
+
+
+@functools.lru_cache(maxsize=None)
+def _problem(kind: str) -> PageRankProblem:
+    dataset, _, _ = generated(kind)
+    return PageRankProblem(dataset.graph, make_weighting(kind, dataset.graph))
+
+
+@functools.lru_cache(maxsize=None)
+def _model(kind: str, method: str):
+    return build_reduced_model(_problem(kind), ReductionSettings(method=method, samples=128, max_rank=100),
+                               progress=False)
+
+
+@functools.lru_cache(maxsize=None)
+def _fresh(kind: str, count: int = 12):
+    """Fresh parameter points (another seed than the model's samples) and their full solutions."""
+    problem = _problem(kind)
+    thetas = problem.weighting.sample(count, seed=424242)
+    return thetas, [problem.solve(theta, tol=1e-12).x for theta in thetas]
+
+
+def _top_metrics(x, y, k=100):
+    top = np.argsort(-x)[:k]
+    # Kendall tau by the general-purpose reference implementation (scipy.stats.kendalltau).
+    tau = kendalltau(x[top], y[top]).statistic
+    return tau, np.abs(x[top] - y[top]).sum() / x[top].sum()
+
+
+@pytest.mark.parametrize("kind,method", CASES)
+def test_reduced_matches_full_solves_at_fresh_points(kind, method):
+    model = _model(kind, method)
+    assert model.rank <= 100
+    thetas, exact = _fresh(kind)
+    for theta, x in zip(thetas, exact):
+        y = model.vector(theta)
+        tau, l1 = _top_metrics(x, y)
+        assert tau >= 0.999, (kind, method, tau)
+        assert l1 <= 1e-3, (kind, method, l1)
+        # normalisation is an exact constraint of the reduced solve
+        assert abs(y.sum() - 1.0) <= 1e-12
+        # the certified bound (||M^-1||_1 <= 1/(1-alpha)) holds for the true error
+        assert np.abs(x - y).sum() <= model.certified_bound(theta, y) * (1 + 1e-9) + 1e-15
+
+
+def test_galerkin_with_full_snapshot_basis_reproduces_a_snapshot():
+    problem = _problem("mixture")
+    settings = ReductionSettings(method="galerkin", samples=24, rank=24, energy=0.0)
+    model = build_reduced_model(problem, settings, progress=False)
+    assert model.rank == 24
+    theta = model.thetas[5]
+    x = problem.solve(theta, tol=1e-13).x
+    assert np.abs(model.vector(theta) - x).sum() <= 1e-10
+
+
+def test_cost_free_row_choice_equals_scipy_pivoted_qr():
+    # Businger-Golub column pivoting as implemented by LAPACK geqp3 (scipy.linalg.qr, pivoting=True)
+    rng = np.random.default_rng(3)
+    stacked = rng.normal(size=(400, 30)) * rng.pareto(1.5, size=(400, 1))
+    choice = select_rows(stacked, 30, pool_size=16)  # a small pool exercises the lazy growth
+    _, _, pivots = scipy.linalg.qr(stacked.T, pivoting=True, mode="economic")
+    np.testing.assert_array_equal(choice.rows, pivots[:30])
+    assert choice.candidates_scored < 400
+
+
+def test_cost_aware_choice_honours_budget_and_prefers_cheap_rows():
+    problem = _problem("features")
+    model = _model("features", "interpolation")
+    cost = row_cost(problem.graph, problem.weighting)
+    stacked = problem.operator(problem.weighting.theta0).apply(model.basis.vectors)
+    plain = select_rows(stacked, 60)
+    budget = 0.3 * cost[plain.rows].sum()
+    frugal = select_rows(stacked, 60, cost=cost, gamma=0.05, budget=budget)
+    assert isinstance(frugal, RowChoice)
+    assert cost[frugal.rows].sum() <= budget
+    assert cost[frugal.rows].mean() < cost[plain.rows].mean()
+
+
+def test_row_choice_stops_when_rank_is_exhausted():
+    rng = np.random.default_rng(4)
+    low_rank = rng.normal(size=(200, 5)) @ rng.normal(size=(5, 12))
+    assert select_rows(low_rank, 10).rows.size == 5
+
+
+@pytest.mark.parametrize("kind,method", CASES)
+def test_reduced_score_gradients_match_finite_differences(kind, method):
+    model = _model(kind, method)
+    nodes = np.arange(0, model.problem.graph.n, 37)
+    scorer = model.scorer(nodes)
+    weights = np.random.default_rng(5).normal(size=nodes.size)
+
+    def objective(theta, arrays):
+        return jnp.dot(weights, jnp.log(scorer.fn(theta, arrays)))
+
+    value = jax.jit(objective)
+    grad = jax.jit(jax.grad(objective))
+    theta = model.problem.weighting.sample(3, seed=77)[2]
+    g = np.asarray(grad(jnp.asarray(theta), scorer.arrays))
+    step = 1e-6
+    fd = np.array([
+        (value(jnp.asarray(theta + step * e), scorer.arrays) - value(jnp.asarray(theta - step * e), scorer.arrays))
+        / (2 * step)
+        for e in np.eye(theta.size)
+    ])
+    np.testing.assert_allclose(g, fd, rtol=1e-5, atol=1e-8 * np.abs(fd).max())
+    # the scorer reads only its nodes and agrees with the full reduced vector there
+    np.testing.assert_allclose(np.asarray(scorer.fn(jnp.asarray(theta), scorer.arrays)),
+                               model.vector(theta)[nodes], rtol=1e-10, atol=1e-15)
+
+
+def test_save_load_round_trip_and_fingerprint_refusal(tmp_path):
+    model = _model("scale", "interpolation")
+    path = model.save(tmp_path / "model.npz")
+    loaded = load_reduced_model(path, model.problem)
+    theta = model.problem.weighting.sample(2, seed=9)[1]
+    np.testing.assert_allclose(loaded.vector(theta), model.vector(theta), rtol=0, atol=1e-14)
+    np.testing.assert_array_equal(loaded.rows, model.rows)
+    other = PageRankProblem(model.problem.graph, model.problem.weighting, damping=0.8)
+    with pytest.raises(ModelMismatchError, match="built for other data"):
+        load_reduced_model(path, other)
+    with pytest.raises(FitrankInputError, match="not a readable"):
+        load_reduced_model(tmp_path / "missing.npz", model.problem)
+
+
+def test_snapshots_on_an_executor_equal_serial_ones():
+    problem = _problem("scale")
+    thetas = problem.weighting.sample(6, seed=1)
+    serial = solve_snapshots(problem, thetas, progress=False)
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        parallel = solve_snapshots(problem, thetas, executor=pool, chunk_size=2, progress=False)
+    np.testing.assert_allclose(parallel, serial, rtol=0, atol=1e-12)
+
+
+def test_method_of_snapshots_from_memmap_equals_svd(tmp_path):
+    problem = _problem("scale")
+    thetas = problem.weighting.sample(20, seed=2)
+    stored = np.lib.format.open_memmap(tmp_path / "x.npy", mode="w+", dtype=np.float64,
+                                       shape=(problem.graph.n, 20))
+    solve_snapshots(problem, thetas, out=stored, progress=False)
+    dense = pod_basis(np.asarray(stored), rank=8, method="svd")
+    streamed = pod_basis(stored, rank=8, method="gram", block_rows=300)
+    np.testing.assert_allclose(streamed.singular_values[:8], dense.singular_values[:8], rtol=1e-8)
+    # same subspace: the projector difference is tiny
+    diff = streamed.vectors @ streamed.vectors.T - dense.vectors @ dense.vectors.T
+    assert np.abs(diff).max() < 1e-7
+
+
+def test_energy_rule_and_basis_extension():
+    rng = np.random.default_rng(6)
+    snapshots = rng.normal(size=(300, 40)) @ np.diag(0.5 ** np.arange(40)) @ rng.normal(size=(40, 40))
+    basis = pod_basis(snapshots, energy=1e-6)
+    s2 = basis.singular_values**2
+    assert 1 - s2[:basis.rank].sum() / s2.sum() <= 1e-6 < 1 - s2[:basis.rank - 1].sum() / s2.sum()
+    new = rng.normal(size=(300, 1))
+    grown = extend_basis(basis, new, rank=basis.rank + 1)
+    # the new vector is in the span of the extended basis
+    residual = new - grown.vectors @ (grown.vectors.T @ new)
+    assert np.linalg.norm(residual) < 1e-10 * np.linalg.norm(new)
+
+
+def test_enrichment_repairs_a_too_small_basis():
+    problem = _problem("scale")
+    small = build_reduced_model(problem, ReductionSettings(samples=8, rank=4, rows=12), progress=False)
+    theta = problem.weighting.sample(5, seed=1234)[4]
+    x = problem.solve(theta, tol=1e-12).x
+    before = np.abs(small.vector(theta) - x).sum()
+    better = enrich(small, theta[None, :])
+    after = np.abs(better.vector(theta) - x).sum()
+    assert better.rank == small.rank + 1
+    assert after < 1e-8 < before
+
+
+def test_galerkin_refused_for_non_affine_weighting():
+    with pytest.raises(FitrankInputError, match="affine"):
+        build_reduced_model(_problem("scale"), ReductionSettings(method="galerkin", samples=4), progress=False)
