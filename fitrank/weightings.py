@@ -162,9 +162,6 @@ def relation_mixture(graph: Graph) -> Weighting:
         edge_ids = np.asarray(edge_ids, dtype=np.int64)
         return {"rel": graph.relation[edge_ids], "unit": unit[edge_ids]}
 
-    def transition(theta, tables):
-        return jax.nn.softmax(theta)[tables["rel"]] * tables["unit"]
-
     num_rel = graph.num_relations
     return Weighting(
         kind="mixture",
@@ -176,7 +173,7 @@ def relation_mixture(graph: Graph) -> Weighting:
         closed_form_out_weight=True,
         tables=local_tables(np.arange(graph.num_edges)),
         leak_basis=lacks,
-        transition=transition,
+        transition=_mixture_transition,
         leak_coefficients=jax.nn.softmax,
         coefficients=jax.nn.softmax,
         local_tables=local_tables,
@@ -224,11 +221,6 @@ def relation_scale(graph: Graph, bound: float = 2.5) -> Weighting:
             "out_weight": out_weight[sources],
         }
 
-    def transition(theta, tables):
-        scale = jnp.exp(theta - jax.lax.stop_gradient(jnp.max(theta)))
-        out = tables["out_weight"] @ scale
-        return tables["base"] * scale[tables["rel"]] / out[tables["slot"]]
-
     num_rel = graph.num_relations
     full = {"rel": graph.relation, "base": graph.base, "slot": graph.src, "out_weight": out_weight}
     return Weighting(
@@ -241,7 +233,7 @@ def relation_scale(graph: Graph, bound: float = 2.5) -> Weighting:
         closed_form_out_weight=True,
         tables=full,
         leak_basis=_dangling_basis(graph),
-        transition=transition,
+        transition=_scale_transition,
         leak_coefficients=_one_coefficient,
         coefficients=None,
         local_tables=local_tables,
@@ -304,16 +296,6 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
             "target": lookup[edge_ids],
         }
 
-    def transition(theta, tables):
-        score = tables["log_base"] + tables["feat"] @ theta
-        num = tables["slots"].shape[0]
-        peak = jax.lax.stop_gradient(jax.ops.segment_max(score, tables["slot"], num_segments=num))
-        shifted = jnp.exp(score - peak[tables["slot"]])
-        total = jax.ops.segment_sum(shifted, tables["slot"], num_segments=num)
-        p_out = shifted / total[tables["slot"]]
-        target = tables.get("target")
-        return p_out if target is None else p_out[target]
-
     f = standard.shape[1]
     bound = 0.7 / np.sqrt(f) if bound is None else float(bound)
     full = {"log_base": log_base, "feat": standard, "slot": graph.src, "slots": np.zeros(graph.n)}
@@ -327,13 +309,38 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         closed_form_out_weight=False,
         tables=full,
         leak_basis=_dangling_basis(graph),
-        transition=transition,
+        transition=_feature_transition,
         leak_coefficients=_one_coefficient,
         coefficients=None,
         local_tables=local_tables,
         feature_center=center,
         feature_scale=spread,
     )
+
+
+# Transitions are module-level functions of (theta, tables) only, so one jit-compiled
+# program serves every weighting of the same kind and table shapes.
+
+
+def _mixture_transition(theta, tables):
+    return jax.nn.softmax(theta)[tables["rel"]] * tables["unit"]
+
+
+def _scale_transition(theta, tables):
+    scale = jnp.exp(theta - jax.lax.stop_gradient(jnp.max(theta)))
+    out = tables["out_weight"] @ scale
+    return tables["base"] * scale[tables["rel"]] / out[tables["slot"]]
+
+
+def _feature_transition(theta, tables):
+    score = tables["log_base"] + tables["feat"] @ theta
+    num = tables["slots"].shape[0]
+    peak = jax.lax.stop_gradient(jax.ops.segment_max(score, tables["slot"], num_segments=num))
+    shifted = jnp.exp(score - peak[tables["slot"]])
+    total = jax.ops.segment_sum(shifted, tables["slot"], num_segments=num)
+    p_out = shifted / total[tables["slot"]]
+    target = tables.get("target")
+    return p_out if target is None else p_out[target]
 
 
 def row_cost(graph: Graph, weighting: Weighting) -> np.ndarray:

@@ -1,0 +1,146 @@
+"""Reduced models against full solves: online time, speed-up and accuracy, in one run.
+
+On a generated graph (about 2M edges, 4 relations, 3 features by default) this
+builds, for k = 50 and 100, a Galerkin model (relation mixture) and
+interpolation models (relation scale and feature log-linear, r = 2k rows), and
+prints for each: full solve time, online time for the scores of 2,000 nodes,
+their ratio, and the worst Kendall tau / normalised L1 on the top-100 over 20
+fresh parameter points. For the feature weighting it also prints the trade-off
+between edges touched by the interpolation rows and accuracy, over cost
+weights gamma.
+
+    python experiments/bench_reduced.py            # about 2M edges
+    python experiments/bench_reduced.py --quick    # small, under a minute
+
+The last line is one JSON object.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+
+from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
+from fitrank.metrics import kendall_tau_topk, l1_topk  # noqa: E402
+from fitrank.pagerank import PageRankProblem  # noqa: E402
+from fitrank.reduced import ReductionSettings, build_reduced_model  # noqa: E402
+from fitrank.tables import load_dataset  # noqa: E402
+from fitrank.weightings import make_weighting  # noqa: E402
+
+
+def median_seconds(fn, repeats: int) -> float:
+    times = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - start)
+    return float(np.median(times))
+
+
+def online_seconds(model, nodes, thetas, repeats=200) -> float:
+    scorer = model.scorer(nodes)
+    fn = jax.jit(scorer.fn)
+    points = [jnp.asarray(t) for t in thetas]
+    fn(points[0], scorer.arrays).block_until_ready()
+
+    def run():
+        for point in points:
+            fn(point, scorer.arrays).block_until_ready()
+
+    return median_seconds(run, max(3, repeats // len(points))) / len(points)
+
+
+def accuracy(model, thetas, exact):
+    taus, l1s = [], []
+    for theta, x in zip(thetas, exact):
+        y = model.vector(theta)
+        taus.append(kendall_tau_topk(x, y, k=100))
+        l1s.append(l1_topk(x, y, k=100))
+    return float(min(taus)), float(max(l1s))
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="small graph, under a minute")
+    parser.add_argument("--nodes", type=int, default=None)
+    parser.add_argument("--samples", type=int, default=128)
+    parser.add_argument("--fresh", type=int, default=20)
+    parser.add_argument("--seed", type=int, default=5)
+    args = parser.parse_args()
+    nodes = args.nodes or (8_000 if args.quick else 200_000)
+    ranks = (20, 40) if args.quick else (50, 100)
+    samples = 48 if args.quick else args.samples
+    fresh_count = 6 if args.quick else args.fresh
+    rng = np.random.default_rng(args.seed)
+
+    results = {}
+    lines = []
+    edges_count = None
+    folder = Path(tempfile.mkdtemp(prefix="fitrank-bench-"))
+    for kind, method in (("mixture", "galerkin"), ("scale", "interpolation"), ("features", "interpolation")):
+        edges, pairs, truth = generate_dataset(nodes, args.seed, kind, relations=4, features=3)
+        write_dataset(folder / kind, edges, pairs, truth)
+        dataset = load_dataset(folder / kind / "edges.csv", folder / kind / "pairs.csv")
+        graph = dataset.graph
+        edges_count = graph.num_edges
+        problem = PageRankProblem(graph, make_weighting(kind, graph))
+        fresh = problem.weighting.sample(fresh_count, seed=10_000 + args.seed)
+        start = time.perf_counter()
+        exact = [problem.solve(theta).x for theta in fresh]
+        full_s = (time.perf_counter() - start) / len(fresh)
+        score_nodes = np.sort(rng.choice(graph.n, size=min(2000, graph.n), replace=False))
+        per_rank = {}
+        for k in ranks:
+            settings = ReductionSettings(method=method, samples=samples, rank=k, rows=2 * k)
+            model = build_reduced_model(problem, settings, progress=False)
+            online = online_seconds(model, score_nodes, fresh)
+            tau, l1 = accuracy(model, fresh, exact)
+            per_rank[k] = {"online_s": online, "speedup": full_s / online, "tau_top100_min": tau,
+                           "l1_top100_max": l1, "edges_touched": model.info["edges_touched"],
+                           "offline_s": model.info["offline_s"]}
+            lines.append(f"{kind:9s} {method:13s} k={k:3d} full {full_s * 1e3:8.1f} ms  online {online * 1e3:7.3f} ms"
+                         f"  x{full_s / online:8.0f}  tau>={tau:.5f}  L1<={l1:.1e}"
+                         f"  edges touched {model.info['edges_touched']:>8d}  offline {model.info['offline_s']:.1f} s")
+            print(lines[-1], flush=True)
+        results[kind] = {"method": method, "full_solve_s": full_s, "by_rank": per_rank}
+        if kind == "features":
+            k = ranks[-1]
+            curve = []
+            for gamma in (0.0, 0.25, 1.0, 4.0, 16.0):
+                settings = ReductionSettings(method=method, samples=samples, rank=k, rows=2 * k, gamma=gamma)
+                model = build_reduced_model(problem, settings, progress=False)
+                tau, l1 = accuracy(model, fresh, exact)
+                online = online_seconds(model, score_nodes, fresh)
+                curve.append({"gamma": gamma, "edges_touched": model.info["edges_touched"], "tau_top100_min": tau,
+                              "l1_top100_max": l1, "online_s": online})
+                print(f"  trade-off gamma={gamma:<5} edges touched {model.info['edges_touched']:>8d}"
+                      f" ({model.info['edges_touched'] / graph.num_edges:6.1%})  tau>={tau:.5f}  L1<={l1:.1e}"
+                      f"  online {online * 1e3:.3f} ms", flush=True)
+            results[kind]["tradeoff"] = curve
+
+    k = ranks[-1]
+    summary = {
+        "edges": edges_count,
+        "full_solve_s": results["scale"]["full_solve_s"],
+        "galerkin_s": results["mixture"]["by_rank"][k]["online_s"],
+        "interp_s": {kind: results[kind]["by_rank"][k]["online_s"] for kind in ("scale", "features")},
+        "tau_top100_min": {kind: results[kind]["by_rank"][k]["tau_top100_min"] for kind in results},
+        "l1_top100_max": {kind: results[kind]["by_rank"][k]["l1_top100_max"] for kind in results},
+        "k": k,
+        "details": results,
+    }
+    print(json.dumps(summary))
+
+
+if __name__ == "__main__":
+    main()
