@@ -199,10 +199,9 @@ def build_graph(
     features = np.zeros((num_edges, 0)) if features is None else np.asarray(features, dtype=np.float64)
     if features.ndim == 1:
         features = features[:, None]
-    order = np.lexsort((src, dst))
-    if np.all(order[1:] > order[:-1]):
-        order = None  # already sorted; avoid copies on large graphs
-    if order is not None:
+    already_sorted = bool(np.all((dst[1:] > dst[:-1]) | ((dst[1:] == dst[:-1]) & (src[1:] >= src[:-1]))))
+    if not already_sorted:  # loaders hand over sorted edges; sorting 10M edges again costs seconds
+        order = np.lexsort((src, dst))
         src, dst, base, relation, features = src[order], dst[order], base[order], relation[order], features[order]
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(np.bincount(dst, minlength=n), out=indptr[1:])

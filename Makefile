@@ -1,0 +1,42 @@
+# Set-up and everyday commands. Every target installs the package (editable,
+# with the test and dist extras) into $(VENV) first; the install is redone only
+# when pyproject.toml changes (the stamp file records the last install).
+
+PYTHON ?= $(shell command -v python3.11 2>/dev/null || command -v python3)
+VENV ?= .venv
+STAMP := $(VENV)/.fitrank-installed
+# The lead replaces this one line with the real demo command.
+DEMO_CMD = $(VENV)/bin/python -c "import fitrank; print('fitrank', fitrank.__version__, 'is installed')"
+BENCHMARKS := $(sort $(wildcard experiments/*.py))
+
+.PHONY: install demo test bench clean distclean
+
+install: $(STAMP)
+
+$(VENV)/bin/python:
+	$(PYTHON) -m venv $(VENV)
+
+$(STAMP): pyproject.toml | $(VENV)/bin/python
+	$(VENV)/bin/python -m pip install --disable-pip-version-check -e '.[test,dist]'
+	touch $@
+
+demo: $(STAMP)
+	$(VENV)/bin/python -m fitrank.cli --help
+	$(DEMO_CMD)
+
+test: $(STAMP)
+	$(VENV)/bin/python -m pytest -q
+
+bench: $(STAMP)
+	@if [ -z "$(BENCHMARKS)" ]; then echo "no benchmark scripts in experiments/"; fi
+	@set -e; for script in $(BENCHMARKS); do \
+		echo "== $$script --quick"; \
+		$(VENV)/bin/python $$script --quick; \
+	done
+
+clean:
+	rm -rf build dist .pytest_cache .hypothesis *.egg-info fitrank/*.egg-info
+	find . -path ./$(VENV) -prune -o -name __pycache__ -type d -exec rm -rf {} +
+
+distclean: clean
+	rm -rf $(VENV)

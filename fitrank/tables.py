@@ -1,0 +1,616 @@
+"""Read the input tables (edges, optional nodes, pairs) into a :class:`Dataset`.
+
+Three tables, each a CSV file (``.csv``, or compressed ``.csv.gz`` /
+``.csv.bz2``) or a Parquet file (``.parquet`` / ``.pq``); the suffix decides.
+
+Edge table, one row per edge ``source -> target``:
+  ``source``, ``target`` (required): node ids.
+  ``relation`` (optional): a text (or integer) label; relation codes follow the
+  labels sorted as text, so the same labels give the same codes whatever the
+  row order.
+  ``weight`` (optional): base weight, a finite number > 0; 1 when absent.
+  Every other column is an edge feature and must be numeric.
+
+Node table (optional), one row per node:
+  ``node`` (required): a node id, at most once.
+  ``teleport`` (optional): teleport weight, a finite number >= 0, not all 0.
+  Nodes of the edge table that the node table does not list get teleport
+  weight 0. Without a ``teleport`` column the teleport distribution is uniform
+  over all nodes. Nodes listed here but absent from the edge table are added
+  as isolated (dangling) nodes.
+
+Pair table, one row per preference "preferred ranks above other":
+  ``preferred``, ``other`` (required): node ids of the graph, never equal.
+  ``weight`` (optional): confidence, a finite number > 0; 1 when absent.
+  ``split`` (optional): ``train``, ``valid`` or ``test`` (case and surrounding
+  spaces ignored). Without it the pairs are split at random by
+  :func:`random_split` with the given seed and fractions (0.7/0.15/0.15).
+  Node and pair tables accept no other columns (a typo must not be ignored).
+
+Conventions:
+  Rows are counted as a person counts data rows: the header is not a row, the
+  first data row is row 1 (blank CSV lines are skipped and not counted). Every
+  error is a :class:`fitrank.errors.DataError` naming the file, the row and/or
+  column, and the problem.
+
+  Node ids are integers when every id in the edge and node tables is an
+  integer column or plain integer text (an optional ``-`` then digits, no
+  leading zero, no spaces), and text otherwise; so ``1`` and ``01`` are one
+  node only if nothing forces text, and in text mode they are two nodes.
+  A missing id (null, empty or blank cell, ``nan``/``NaN``) is an error.
+  Node indices 0..n-1 follow first appearance reading the edge table row by
+  row, source before target, then the node table's new ids in row order.
+  ``Graph.node_ids`` keeps the original ids (int64, or an object array of str).
+  Pair ids are looked up as the graph stores them; when one side is text and
+  the other integer, both are compared as text.
+
+Policies reported in ``Dataset.notes`` rather than refused:
+  Rows with the same (source, target, relation) are merged into one edge: base
+  weights are summed and each feature becomes the base-weight-weighted mean of
+  the merged rows' features. Self-loops are kept and counted. Pairs repeated
+  exactly are kept (each row counts in the loss) and counted; a pair given in
+  both directions is kept both ways and counted.
+
+Everything is vectorised (Arrow and NumPy); no Python loop runs over rows.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.csv as pacsv
+import pyarrow.parquet as pq
+
+from fitrank.errors import ConfigError, DataError
+from fitrank.graph import SPLITS, Dataset, Graph, Pairs, build_graph
+
+EDGE_COLUMNS = ("source", "target", "relation", "weight")
+NODE_COLUMNS = ("node", "teleport")
+PAIR_COLUMNS = ("preferred", "other", "weight", "split")
+DEFAULT_SPLIT_FRACTIONS = (0.7, 0.15, 0.15)
+
+_CSV_SUFFIXES = (".csv", ".csv.gz", ".csv.bz2")
+_PARQUET_SUFFIXES = (".parquet", ".pq")
+_PLAIN_INTEGER = r"^(0|-?[1-9][0-9]{0,18})$"
+_FEATURE_HINT = "; every extra column of the edge table is an edge feature: drop the column or make it numeric"
+
+
+# --------------------------------------------------------------------------- public API
+
+
+def load_dataset(
+    edges: str | Path,
+    pairs: str | Path,
+    nodes: str | Path | None = None,
+    *,
+    seed: int = 0,
+    split_fractions: tuple[float, float, float] = DEFAULT_SPLIT_FRACTIONS,
+) -> Dataset:
+    """Read the edge, node and pair tables into one validated dataset.
+
+    Args:
+      edges: path of the edge table.
+      pairs: path of the pair table.
+      nodes: path of the optional node table.
+      seed: seed of the random train/valid/test split, used only when the pair
+        table has no ``split`` column.
+      split_fractions: (train, valid, test) fractions of that split, >= 0,
+        summing to 1.
+
+    Returns:
+      The dataset; ``sources`` maps ``edges``/``nodes``/``pairs`` to the paths
+      given (``nodes`` None when absent) and ``notes`` holds the non-fatal
+      findings (merged duplicates, self-loops, repeated or contradictory pairs...).
+
+    Raises:
+      DataError: a table is missing, unreadable or invalid.
+      ConfigError: ``split_fractions`` is invalid.
+    """
+    _check_fractions(split_fractions)
+    notes: list[str] = []
+    graph = read_edges(edges, nodes, notes=notes)
+    pair_set = read_pairs(pairs, graph, seed=seed, split_fractions=split_fractions, notes=notes)
+    sources = {"edges": str(edges), "nodes": None if nodes is None else str(nodes), "pairs": str(pairs)}
+    return Dataset(graph=graph, pairs=pair_set, sources=sources, notes=tuple(notes))
+
+
+def read_edges(edges: str | Path, nodes: str | Path | None = None, *, notes: list[str] | None = None) -> Graph:
+    """Read an edge table (and optional node table) into a :class:`Graph`.
+
+    Args:
+      edges: path of the edge table.
+      nodes: path of the optional node table (teleport weights, isolated nodes).
+      notes: if given, non-fatal findings are appended to it as strings.
+
+    Returns:
+      The graph (n nodes, E merged edges), edges in CSR target-major order.
+    """
+    notes = [] if notes is None else notes
+    table = _read_table(edges, text_columns=("source", "target", "relation"))
+    _require_columns(table, edges, required=("source", "target"))
+    num_rows = table.num_rows
+    id_columns = [_ids(table, "source", edges), _ids(table, "target", edges)]
+    node_table = None
+    if nodes is not None:
+        node_table = _read_table(nodes, text_columns=("node",))
+        _require_columns(node_table, nodes, required=("node",), allowed=NODE_COLUMNS)
+        id_columns.append(_ids(node_table, "node", nodes))
+    id_columns = _common_id_type(id_columns)
+
+    # Row by row, source before target: indices follow first appearance as a person reads the file.
+    interleave = np.empty(2 * num_rows, dtype=np.int64)
+    interleave[0::2] = np.arange(num_rows)
+    interleave[1::2] = np.arange(num_rows, 2 * num_rows)
+    edge_ids = pa.concat_arrays(id_columns[:2]).take(pa.array(interleave))
+    encoded = pc.dictionary_encode(pa.concat_arrays([edge_ids, *id_columns[2:]]))
+    codes = encoded.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+    node_ids = encoded.dictionary.to_numpy(zero_copy_only=False)
+    n = len(node_ids)
+    src, dst = codes[0 : 2 * num_rows : 2], codes[1 : 2 * num_rows : 2]
+
+    base = np.ones(num_rows)
+    if "weight" in table.column_names:
+        base = _numbers(table, "weight", edges)
+        _require_positive(base, edges, "weight")
+    relation, relation_names = np.zeros(num_rows, dtype=np.int64), ("",)
+    if "relation" in table.column_names:
+        relation, relation_names = _relations(table, edges)
+    feature_names = tuple(c for c in table.column_names if c not in EDGE_COLUMNS)
+    features = _features(table, edges, feature_names)
+
+    src, dst, relation, base, features, merged = _merge_duplicate_edges(
+        src, dst, relation, base, features, n, len(relation_names)
+    )
+    if merged:
+        notes.append(
+            f"{edges}: rows repeating an earlier row's (source, target, relation), merged into it "
+            f"(base weights summed, features averaged weighted by base weight): {merged}"
+        )
+    self_loops = int(np.count_nonzero(src == dst))
+    if self_loops:
+        notes.append(f"{edges}: self-loops (source == target), kept: {self_loops}")
+
+    teleport = None
+    if node_table is not None:
+        node_codes = codes[2 * num_rows :]
+        _refuse_duplicate_nodes(node_codes, node_ids, nodes)
+        # Edge-table ids were encoded first, so they hold the dictionary's leading positions.
+        isolated = n - int(codes[: 2 * num_rows].max()) - 1
+        if isolated:
+            notes.append(f"{nodes}: nodes without any edge, added as isolated nodes: {isolated}")
+        if "teleport" in node_table.column_names:
+            teleport = _teleport(node_table, nodes, node_codes, n, notes)
+    dangling = int(np.count_nonzero(np.bincount(src, minlength=n) == 0))
+    if dangling:
+        notes.append(f"{edges}: nodes without an out-edge (dangling): {dangling} of {n}")
+
+    return build_graph(
+        src,
+        dst,
+        n,
+        base=base,
+        relation=relation,
+        relation_names=relation_names,
+        features=features,
+        feature_names=feature_names,
+        node_ids=node_ids,
+        teleport=teleport,
+    )
+
+
+def read_pairs(
+    path: str | Path,
+    graph: Graph,
+    *,
+    seed: int = 0,
+    split_fractions: tuple[float, float, float] = DEFAULT_SPLIT_FRACTIONS,
+    notes: list[str] | None = None,
+) -> Pairs:
+    """Read a pair table whose ids refer to ``graph.node_ids``.
+
+    Args:
+      path: path of the pair table.
+      graph: the graph the pairs refer to.
+      seed, split_fractions: the random split used when there is no ``split`` column.
+      notes: if given, non-fatal findings are appended to it as strings.
+
+    Returns:
+      The Q pairs in file order.
+    """
+    _check_fractions(split_fractions)
+    notes = [] if notes is None else notes
+    table = _read_table(path, text_columns=("preferred", "other", "split"))
+    _require_columns(table, path, required=("preferred", "other"), allowed=PAIR_COLUMNS)
+    q = table.num_rows
+    preferred_ids, other_ids = _common_id_type([_ids(table, "preferred", path), _ids(table, "other", path)])
+    index = _lookup(pa.concat_arrays([preferred_ids, other_ids]), pa.array(graph.node_ids))
+    preferred, other = index[:q], index[q:]
+
+    unknown = (preferred < 0) | (other < 0)
+    if unknown.any():
+        row = int(unknown.argmax())
+        column, ids = ("preferred", preferred_ids) if preferred[row] < 0 else ("other", other_ids)
+        raise DataError(
+            path, f"unknown node {ids[row].as_py()!r}: it is in neither the edge nor the node table", row + 1, column
+        )
+    _raise_first(
+        path,
+        preferred == other,
+        lambda r: f"preferred and other are the same node {preferred_ids[r].as_py()!r}",
+    )
+
+    weight = np.ones(q)
+    if "weight" in table.column_names:
+        weight = _numbers(table, "weight", path)
+        _require_positive(weight, path, "weight")
+    if "split" in table.column_names:
+        split = _split_codes(table, path)
+    else:
+        split = random_split(q, seed, split_fractions)
+        notes.append(
+            f"{path}: no split column; pairs split at random (seed {seed}, fractions "
+            f"{'/'.join(f'{f:g}' for f in split_fractions)})"
+        )
+    _pair_notes(path, preferred, other, split, graph.n, notes)
+    return Pairs(preferred=preferred, other=other, weight=weight, split=split)
+
+
+def random_split(
+    num_pairs: int, seed: int, fractions: tuple[float, float, float] = DEFAULT_SPLIT_FRACTIONS
+) -> np.ndarray:
+    """A reproducible random train/valid/test assignment.
+
+    The counts are ``fractions * num_pairs`` rounded by the largest-remainder
+    rule (common practice: they sum to ``num_pairs`` and each is within 1 of its
+    target); ties between equal remainders go to the earlier split. The
+    pairs given to each split are chosen by a permutation drawn from
+    ``numpy.random.default_rng(seed)``.
+
+    Args:
+      num_pairs: Q, the number of pairs.
+      seed: the random seed.
+      fractions: (train, valid, test) fractions, >= 0, summing to 1.
+
+    Returns:
+      (Q,) int8 positions in :data:`fitrank.graph.SPLITS`.
+    """
+    _check_fractions(fractions)
+    share = np.asarray(fractions, dtype=np.float64)
+    target = share / share.sum() * num_pairs  # the sum may miss 1 by rounding
+    counts = np.floor(target).astype(np.int64)
+    short = num_pairs - int(counts.sum())
+    counts[np.argsort(-(target - counts), kind="stable")[:short]] += 1
+    split = np.empty(num_pairs, dtype=np.int8)
+    split[np.random.default_rng(seed).permutation(num_pairs)] = np.repeat(np.arange(3, dtype=np.int8), counts)
+    return split
+
+
+# --------------------------------------------------------------------------- reading
+
+
+def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
+    """Read a CSV or Parquet file; in CSV the ``text_columns`` keep their text."""
+    name = Path(path).name.lower()
+    if name.endswith(_PARQUET_SUFFIXES):
+        kind = "Parquet"
+    elif name.endswith(_CSV_SUFFIXES):
+        kind = "CSV"
+    else:
+        raise DataError(path, "unknown table format: the file name must end in .csv, .csv.gz, .csv.bz2, .parquet or .pq")
+    file = Path(path)
+    if not file.exists():
+        raise DataError(path, "no such file")
+    if not file.is_file():
+        raise DataError(path, "not a regular file")
+    try:
+        table = _read_csv(file, text_columns) if kind == "CSV" else pq.read_table(file)
+    except (pa.ArrowException, OSError) as err:
+        message = (str(err).strip().splitlines() or [type(err).__name__])[0]
+        if "Empty CSV file" in message:
+            raise DataError(path, "the file is empty (no header row)") from None
+        row = None
+        if kind == "CSV" and "CSV parse error" in message:
+            row, message = _csv_error_row(file, text_columns, message)
+        raise DataError(path, f"cannot read as {kind}: {message}", row) from None
+    names = table.column_names
+    repeated = [c for i, c in enumerate(names) if c in names[:i]]
+    if repeated:
+        raise DataError(path, "the column name appears twice in the header", column=repeated[0])
+    if table.num_rows == 0:
+        raise DataError(path, "the table has no data rows")
+    return table
+
+
+def _read_csv(file: Path, text_columns: tuple[str, ...], use_threads: bool = True) -> pa.Table:
+    return pacsv.read_csv(
+        file,
+        read_options=pacsv.ReadOptions(use_threads=use_threads),
+        convert_options=pacsv.ConvertOptions(column_types=dict.fromkeys(text_columns, pa.string())),
+    )
+
+
+def _csv_error_row(file: Path, text_columns: tuple[str, ...], message: str) -> tuple[int | None, str]:
+    """The data row of a CSV parse error, and the message without Arrow's row prefix.
+
+    Arrow numbers the offending row only when it parses on one thread; its
+    "Row #N" counts the header as row 1 and skips blank lines.
+    """
+    try:
+        _read_csv(file, text_columns, use_threads=False)
+    except (pa.ArrowException, OSError) as err:
+        found = re.search(r"Row #(\d+): ", str(err))
+        if found:
+            header_row = 1
+            return int(found.group(1)) - header_row, str(err)[found.end() :].splitlines()[0]
+    return None, message
+
+
+def _require_columns(
+    table: pa.Table, path: str | Path, required: tuple[str, ...], allowed: tuple[str, ...] | None = None
+) -> None:
+    names = table.column_names
+    for column in required:
+        if column not in names:
+            found = ", ".join(repr(c) for c in names)
+            raise DataError(path, f"missing required column '{column}' (the table has {found})")
+    for column in names if allowed is not None else ():
+        if column not in allowed:
+            raise DataError(path, f"unexpected column; this table takes only {', '.join(allowed)}", column=column)
+
+
+def _raise_first(path: str | Path, bad: np.ndarray, problem: Callable[[int], str], column: str | None = None) -> None:
+    """Raise a DataError at the first row where ``bad`` (rows,) is true, if any."""
+    if bad.any():
+        row = int(bad.argmax())
+        raise DataError(path, problem(row), row + 1, column)
+
+
+def _plain(column: pa.ChunkedArray) -> pa.Array:
+    """One contiguous array, dictionary (categorical) columns decoded."""
+    array = column.combine_chunks()
+    if pa.types.is_dictionary(array.type):
+        array = array.dictionary_decode()
+    return array
+
+
+def _is_text(array: pa.Array) -> bool:
+    return pa.types.is_string(array.type) or pa.types.is_large_string(array.type)
+
+
+def _missing_text(array: pa.Array) -> np.ndarray:
+    """(rows,) bool: null, empty or blank, or nan/NaN (how tables spell a missing value)."""
+    trimmed = pc.utf8_trim_whitespace(array)
+    missing = pc.or_(pc.equal(trimmed, ""), pc.equal(pc.utf8_lower(trimmed), "nan"))
+    return pc.fill_null(missing, True).to_numpy(zero_copy_only=False)
+
+
+def _ids(table: pa.Table, column: str, path: str | Path) -> pa.Array:
+    """(rows,) node ids of one column as an int64 or large_string Arrow array."""
+    array = _plain(table.column(column))
+    if pa.types.is_integer(array.type):
+        _raise_first(path, array.is_null().to_numpy(zero_copy_only=False), lambda r: "missing node id", column)
+        try:
+            return array.cast(pa.int64())
+        except pa.ArrowInvalid:
+            raise DataError(path, "node ids do not fit a 64-bit signed integer", column=column) from None
+    if pa.types.is_floating(array.type):
+        values = array.cast(pa.float64()).to_numpy(zero_copy_only=False)
+        _raise_first(path, np.isnan(values), lambda r: "missing node id", column)
+        _raise_first(
+            path,
+            ~np.isfinite(values) | (values != np.round(values)) | (np.abs(values) >= 2.0**63),
+            lambda r: f"node id {float(values[r])!r} is not an integer; ids must be integers or text",
+            column,
+        )
+        return pa.array(values.astype(np.int64))
+    if _is_text(array):
+        array = array.cast(pa.large_string())
+        _raise_first(path, _missing_text(array), lambda r: "missing node id (empty cell or NaN)", column)
+        return array
+    raise DataError(path, f"node ids must be integers or text, not {array.type}", column=column)
+
+
+def _canonical_ints(array: pa.Array) -> pa.Array | None:
+    """The int64 values of a text array if every entry is plain integer text, else None."""
+    # Checked by pattern first: a failing cast is slow, and the cast accepts "01", which must stay text.
+    if not pc.all(pc.match_substring_regex(array, _PLAIN_INTEGER)).as_py():
+        return None
+    try:
+        return array.cast(pa.int64())
+    except pa.ArrowInvalid:  # 19 digits beyond the int64 range
+        return None
+
+
+def _common_id_type(columns: list[pa.Array]) -> list[pa.Array]:
+    """All int64 if every column is integer or plain integer text; else all large_string."""
+    as_ints = [c if pa.types.is_integer(c.type) else _canonical_ints(c) for c in columns]
+    if all(a is not None for a in as_ints):
+        return as_ints
+    return [c.cast(pa.large_string()) for c in columns]
+
+
+def _lookup(ids: pa.Array, node_ids: pa.Array) -> np.ndarray:
+    """(len(ids),) int64 position of each id in ``node_ids``, -1 where absent."""
+    if pa.types.is_integer(ids.type) and pa.types.is_integer(node_ids.type):
+        ids, node_ids = ids.cast(pa.int64()), node_ids.cast(pa.int64())
+    else:
+        ids, node_ids = ids.cast(pa.large_string()), node_ids.cast(pa.large_string())
+    index = pc.index_in(ids, value_set=node_ids)
+    return pc.fill_null(index, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+
+
+def _numbers(table: pa.Table, column: str, path: str | Path, hint: str = "") -> np.ndarray:
+    """(rows,) float64 values of a numeric column, NaN where a cell is empty."""
+    array = _plain(table.column(column))
+    kind = array.type
+    if pa.types.is_integer(kind) or pa.types.is_floating(kind) or pa.types.is_boolean(kind) or pa.types.is_decimal(kind):
+        return array.cast(pa.float64()).to_numpy(zero_copy_only=False)
+    if _is_text(array):
+        text = pd.Series(array.to_numpy(zero_copy_only=False), dtype=object)
+        values = pd.to_numeric(text, errors="coerce").to_numpy(dtype=np.float64)
+        not_number = np.isnan(values) & ~_missing_text(array)
+        _raise_first(path, not_number, lambda r: f"{text.iat[r]!r} is not a number{hint}", column)
+        return values  # Arrow's parser refused a spelling pandas reads; keep pandas' reading
+    raise DataError(path, f"values of type {kind} are not numbers{hint}", column=column)
+
+
+def _require_positive(values: np.ndarray, path: str | Path, column: str, allow_zero: bool = False) -> None:
+    ok = np.isfinite(values) & ((values >= 0) if allow_zero else (values > 0))
+    bound = ">= 0" if allow_zero else "> 0"
+    _raise_first(path, ~ok, lambda r: f"{column} must be a finite number {bound}, got {float(values[r])!r}", column)
+
+
+# --------------------------------------------------------------------------- edge table
+
+
+def _relations(table: pa.Table, path: str | Path) -> tuple[np.ndarray, tuple[str, ...]]:
+    """(E,) int64 relation codes and the labels, sorted as text, they index."""
+    array = _plain(table.column("relation"))
+    if not (pa.types.is_integer(array.type) or _is_text(array)):
+        raise DataError(path, f"relation labels must be text or integers, not {array.type}", column="relation")
+    array = array.cast(pa.large_string())
+    _raise_first(path, _missing_text(array), lambda r: "missing relation label", "relation")
+    encoded = pc.dictionary_encode(array)
+    labels = encoded.dictionary.to_pylist()
+    order = np.argsort(np.array(labels, dtype=object), kind="stable")
+    rank = np.empty(len(labels), dtype=np.int64)
+    rank[order] = np.arange(len(labels))
+    codes = rank[encoded.indices.to_numpy(zero_copy_only=False)]
+    return codes, tuple(labels[i] for i in order)
+
+
+def _features(table: pa.Table, path: str | Path, names: tuple[str, ...]) -> np.ndarray:
+    """(E, f) float64 feature matrix; refuses non-numeric columns and NaN/inf values."""
+    columns = [_numbers(table, name, path, hint=_FEATURE_HINT) for name in names]
+    features = np.column_stack(columns) if columns else np.zeros((table.num_rows, 0))
+    bad = ~np.isfinite(features)
+    if bad.any():
+        row = int(bad.any(axis=1).argmax())
+        col = int(bad[row].argmax())
+        raise DataError(path, f"feature value {float(features[row, col])!r} is not a finite number", row + 1, names[col])
+    return features
+
+
+def _merge_duplicate_edges(
+    src: np.ndarray,
+    dst: np.ndarray,
+    relation: np.ndarray,
+    base: np.ndarray,
+    features: np.ndarray,
+    n: int,
+    num_relations: int,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
+    """Sort edges by (dst, src, relation) and merge rows with the same triple.
+
+    Returns:
+      src, dst, relation, base (E',), features (E', f) and E - E', the number
+      of rows merged away. Merged base weights are summed; merged features are
+      base-weight-weighted means (an unmerged edge keeps its features bit for bit).
+    """
+    if float(n) * n * num_relations < 2.0**62:
+        key = (dst * n + src) * num_relations + relation
+        order = np.argsort(key)  # not stable: only the summation order of duplicates depends on it
+        key = key[order]
+        new = np.empty(key.shape[0], dtype=bool)
+        new[:1] = True
+        np.not_equal(key[1:], key[:-1], out=new[1:])
+    else:  # n too large for one int64 key
+        order = np.lexsort((relation, src, dst))
+        triples = np.stack([dst[order], src[order], relation[order]])
+        new = np.ones(order.shape[0], dtype=bool)
+        new[1:] = (triples[:, 1:] != triples[:, :-1]).any(axis=0)
+    src, dst, relation, base, features = src[order], dst[order], relation[order], base[order], features[order]
+    if new.all():
+        return src, dst, relation, base, features, 0
+    starts = np.flatnonzero(new)
+    sizes = np.diff(np.append(starts, new.shape[0]))
+    summed = np.add.reduceat(base, starts)
+    merged_features = features[starts]
+    groups = sizes > 1
+    if features.shape[1] and groups.any():
+        weighted = np.add.reduceat(features * base[:, None], starts, axis=0)
+        merged_features[groups] = weighted[groups] / summed[groups, None]
+    merged = int(new.shape[0] - starts.shape[0])
+    return src[starts], dst[starts], relation[starts], summed, merged_features, merged
+
+
+# --------------------------------------------------------------------------- node table
+
+
+def _refuse_duplicate_nodes(codes: np.ndarray, node_ids: np.ndarray, path: str | Path) -> None:
+    """Raise at the first node-table row whose node an earlier row already listed."""
+    _, first = np.unique(codes, return_index=True)
+    first_row_of = np.empty(node_ids.shape[0], dtype=np.int64)
+    first_row_of[codes[first]] = first
+
+    def problem(row: int) -> str:
+        node = node_ids[codes[row]]
+        node = node.item() if isinstance(node, np.generic) else node
+        return f"node {node!r} is listed twice (first at row {first_row_of[codes[row]] + 1})"
+
+    _raise_first(path, first_row_of[codes] != np.arange(codes.shape[0]), problem, "node")
+
+
+def _teleport(table: pa.Table, path: str | Path, codes: np.ndarray, n: int, notes: list[str]) -> np.ndarray:
+    """(n,) teleport weights from the node table; unlisted nodes get 0."""
+    values = _numbers(table, "teleport", path)
+    _require_positive(values, path, "teleport", allow_zero=True)
+    if not (values > 0).any():
+        raise DataError(path, "every teleport weight is 0; at least one must be > 0", column="teleport")
+    teleport = np.zeros(n)
+    teleport[codes] = values
+    unlisted = n - codes.shape[0]
+    if unlisted:
+        notes.append(f"{path}: nodes not listed here, given teleport weight 0: {unlisted}")
+    return teleport
+
+
+# --------------------------------------------------------------------------- pair table
+
+
+def _check_fractions(fractions) -> None:
+    values = np.asarray(fractions, dtype=np.float64)
+    if values.shape != (3,) or not np.all(np.isfinite(values)) or np.any(values < 0) or abs(values.sum() - 1) > 1e-9:
+        raise ConfigError(
+            "split_fractions", f"must be three numbers >= 0 (train, valid, test) summing to 1, got {fractions!r}"
+        )
+
+
+def _split_codes(table: pa.Table, path: str | Path) -> np.ndarray:
+    """(Q,) int8 split positions from the ``split`` column."""
+    array = _plain(table.column("split"))
+    if not _is_text(array):
+        raise DataError(path, f"split must be text (train, valid or test), not {array.type}", column="split")
+    normal = pc.utf8_lower(pc.utf8_trim_whitespace(array.cast(pa.large_string())))
+    codes = _lookup(normal, pa.array(SPLITS, type=pa.large_string()))
+
+    def problem(row: int) -> str:
+        value = array[row].as_py()
+        return f"unknown split {'(empty cell)' if value is None else repr(value)}; use train, valid or test"
+
+    _raise_first(path, codes < 0, problem, "split")
+    return codes.astype(np.int8)
+
+
+def _pair_notes(
+    path: str | Path, preferred: np.ndarray, other: np.ndarray, split: np.ndarray, n: int, notes: list[str]
+) -> None:
+    """Count repeated pairs, pairs given both ways, and empty splits."""
+    keys = np.unique(preferred * n + other)
+    repeated = preferred.shape[0] - keys.shape[0]
+    if repeated:
+        notes.append(f"{path}: rows repeating an earlier (preferred, other) pair, all kept: {repeated}")
+    reversed_keys = (keys % n) * n + keys // n
+    both_ways = int(np.count_nonzero(np.isin(reversed_keys, keys))) // 2
+    if both_ways:
+        notes.append(f"{path}: node pairs given in both directions (contradictory), all rows kept: {both_ways}")
+    counts = np.bincount(split, minlength=len(SPLITS))
+    empty = [name for name, count in zip(SPLITS, counts) if count == 0]
+    if empty:
+        notes.append(f"{path}: no pairs in split {', '.join(empty)}")

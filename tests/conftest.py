@@ -1,0 +1,24 @@
+"""Test-wide set-up: JAX in float64 on the CPU, and a Hypothesis profile sized for CI.
+
+x64 must be switched on before any test module builds a JAX array, so it is done
+here, at import time, before pytest collects anything.
+"""
+
+import os
+
+os.environ.setdefault("JAX_PLATFORMS", "cpu")
+
+import jax  # noqa: E402
+
+jax.config.update("jax_enable_x64", True)
+
+from hypothesis import HealthCheck, settings  # noqa: E402
+
+# "ci" (the default): derandomised so a run is repeatable, no deadline (JIT
+# compilation makes first calls slow), few examples to keep the suite short.
+settings.register_profile(
+    "ci", deadline=None, max_examples=30, derandomize=True, suppress_health_check=[HealthCheck.too_slow]
+)
+# "thorough": for a local hunt, FITRANK_HYPOTHESIS_PROFILE=thorough make test
+settings.register_profile("thorough", deadline=None, max_examples=500)
+settings.load_profile(os.environ.get("FITRANK_HYPOTHESIS_PROFILE", "ci"))
