@@ -235,8 +235,12 @@ def _bicgstab(apply: Callable, b: np.ndarray, x0: np.ndarray, alpha: float, norm
     op = spla.LinearOperator((b.size, b.size), matvec=matvec, dtype=np.float64)
     target = tol * norm(b)
     z, rtol, residual = x0, tol, np.inf
-    while count[0] < maxiter:
-        z_new, info = spla.bicgstab(op, b, x0=z, rtol=rtol, atol=0.0, maxiter=max(1, (maxiter - count[0]) // 2))
+    while True:
+        # two mat-vecs per BiCGSTAB step, plus one for its initial residual and one for our check
+        steps = (maxiter - count[0] - 2) // 2
+        if steps < 1:
+            break
+        z_new, info = spla.bicgstab(op, b, x0=z, rtol=rtol, atol=0.0, maxiter=steps)
         if not np.all(np.isfinite(z_new)):
             break  # breakdown: keep the last finite iterate and let the caller report it
         z = z_new
