@@ -30,7 +30,7 @@ import hashlib
 import json
 import time
 import weakref
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Callable
 
 import jax
@@ -96,27 +96,40 @@ class WalkOperator:
     damping: float
     dangling: str
     transition: np.ndarray
+    _cache: dict = field(default_factory=dict, repr=False)
 
     @property
     def n(self) -> int:
         return self.matrix.shape[0]
 
+    @property
+    def leaky(self) -> np.ndarray:
+        """Indices of the nodes with a non-zero leak (usually few: the dangling nodes)."""
+        if "leaky" not in self._cache:
+            self._cache["leaky"] = np.flatnonzero(self.leak)
+        return self._cache["leaky"]
+
     def walk(self, x: np.ndarray) -> np.ndarray:
         """A x: one step of the undamped walk, (n,) or (n, k) -> same shape."""
         y = self.matrix @ x
+        # Sum the leak over the leaking nodes only, without a BLAS dot: a threaded dot
+        # after a mat-vec can stall for milliseconds waking its threads.
+        leaky = self.leaky
+        leaked = self.leak[leaky, None] * x[leaky] if x.ndim == 2 else self.leak[leaky] * x[leaky]
         if self.dangling == "teleport":
-            y += np.multiply.outer(self.teleport, self.leak @ x) if x.ndim == 2 else self.teleport * (self.leak @ x)
+            y += np.multiply.outer(self.teleport, leaked.sum(axis=0)) if x.ndim == 2 else self.teleport * leaked.sum()
         else:
-            y += self.leak[:, None] * x if x.ndim == 2 else self.leak * x
+            y[leaky] += leaked
         return y
 
     def walk_transposed(self, y: np.ndarray) -> np.ndarray:
         """A^T y, (n,) -> (n,)."""
         z = self.matrix.T @ y
+        leaky = self.leaky
         if self.dangling == "teleport":
-            z += self.leak * (self.teleport @ y)
+            z[leaky] += self.leak[leaky] * np.multiply(self.teleport, y).sum()
         else:
-            z += self.leak * y
+            z[leaky] += self.leak[leaky] * y[leaky]
         return z
 
     def apply(self, x: np.ndarray) -> np.ndarray:
@@ -209,11 +222,12 @@ def _power(step: Callable, b: np.ndarray, x0: np.ndarray, alpha: float, norm: Ca
            tol: float, maxiter: int, callback) -> tuple[np.ndarray, int, float, float, bool]:
     """Iterate z <- step(z) + b, with step = alpha A and ||A|| <= 1 in ``norm``."""
     target = tol * norm(b)
-    z, residual = x0, np.inf
+    z, residual, buffer = x0, np.inf, np.empty_like(x0)
     for it in range(1, maxiter + 1):
         z_next = step(z)
         z_next += b
-        residual = norm(z_next - z)  # = ||M z - b||: the update is minus the residual
+        np.subtract(z_next, z, out=buffer)
+        residual = norm(buffer)  # = ||M z - b||: the update is minus the residual
         z = z_next
         if callback is not None:
             callback(it, residual)
@@ -255,23 +269,45 @@ def _bicgstab(apply: Callable, b: np.ndarray, x0: np.ndarray, alpha: float, norm
     return z, count[0], residual, residual / (1 - alpha), False
 
 
+_PROBE_STEPS = 8
+_SLOW_RATE = 0.6
+
+
 def _solve(method: str, damping: float, step, apply, b, x0, norm, tol, maxiter, callback):
     if method not in METHODS:
         raise FitrankInputError(f"solver method must be one of {METHODS}, got '{method}'")
-    if method == "auto":
-        # Power iteration contracts by alpha per mat-vec; past ~0.9 a Krylov method
-        # needs far fewer mat-vecs (common practice; measured in experiments/bench_full_solver.py).
-        method = "power" if damping <= 0.9 else "bicgstab"
     start = time.perf_counter()
-    if method == "power":
-        z, its, res, bound, ok = _power(step, b, x0, damping, norm, tol, maxiter, callback)
+    its, used = 0, method
+    if method == "auto":
+        # Power iteration contracts by the walk's own mixing rate (at most alpha) per
+        # mat-vec; on a fast-mixing graph nothing beats it, on a slow one a Krylov
+        # method needs far fewer mat-vecs. Probe a few steps, measure, then choose.
+        # (Threshold: measured in experiments/bench_full_solver.py; common practice
+        # otherwise only says "Krylov when damping is close to 1".)
+        history = []
+
+        def probe_callback(it, residual):
+            history.append(residual)
+            if callback is not None:
+                callback(it, residual)
+
+        z, its, res, bound, ok = _power(step, b, x0, damping, norm, tol, min(_PROBE_STEPS, maxiter), probe_callback)
+        if ok or its >= maxiter:
+            return z, SolveReport(ok, its, float(res), float(bound), "power", time.perf_counter() - start)
+        rate = (history[-1] / history[-5]) ** 0.25 if len(history) >= 5 and history[-5] > 0 else 1.0
+        x0, used = z, ("power" if rate <= _SLOW_RATE else "bicgstab")
+    if used == "power":
+        z, more, res, bound, ok = _power(step, b, x0, damping, norm, tol, maxiter - its, callback)
     else:
-        z, its, res, bound, ok = _bicgstab(apply, b, x0, damping, norm, tol, maxiter, callback)
-        if not ok and its < maxiter:  # breakdown: finish with the always-convergent iteration
-            z, more, res, bound, ok = _power(step, b, z, damping, norm, tol, maxiter - its, callback)
+        z, more, res, bound, ok = _bicgstab(apply, b, x0, damping, norm, tol, maxiter - its, callback)
+        if not ok and its + more < maxiter:  # breakdown: finish with the always-convergent iteration
             its += more
-            method = "bicgstab+power"
-    return z, SolveReport(ok, its, float(res), float(bound), method, time.perf_counter() - start)
+            z, more, res, bound, ok = _power(step, b, z, damping, norm, tol, maxiter - its, callback)
+            used = "bicgstab+power"
+    its += more
+    if method == "auto":
+        used = "power" if used == "power" else f"power+{used}"
+    return z, SolveReport(ok, its, float(res), float(bound), used, time.perf_counter() - start)
 
 
 def _l1(z):
@@ -320,7 +356,8 @@ def pagerank(
       tol: stop when the certified L1 error ||x - x_true||_1 is at most ``tol``
         (checked as ||r||_1 <= tol (1 - alpha)).
       maxiter: at most this many mat-vecs.
-      method: ``"power"``, ``"bicgstab"`` or ``"auto"`` (power up to damping 0.9).
+      method: ``"power"``, ``"bicgstab"`` or ``"auto"`` (power iteration, switching to
+        BiCGSTAB when the first steps show slow contraction).
       x0: (n,) starting vector (warm start), default v.
       callback: called as ``callback(iteration, residual)`` after each check.
 

@@ -36,6 +36,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.stats import qmc
 
+from fitrank.errors import FitrankInputError
 from fitrank.graph import Graph
 
 jax.config.update("jax_enable_x64", True)
@@ -130,7 +131,7 @@ def make_weighting(kind: str, graph: Graph, **options) -> Weighting:
     """The weighting called ``kind`` ("mixture", "scale" or "features") on ``graph``."""
     builders = {"mixture": relation_mixture, "scale": relation_scale, "features": feature_loglinear}
     if kind not in builders:
-        raise ValueError(f"unknown weighting '{kind}'; choose one of {', '.join(KINDS)}")
+        raise FitrankInputError(f"unknown weighting '{kind}'; choose one of {', '.join(KINDS)}")
     return dataclasses.replace(builders[kind](graph, **options), options=dict(options))
 
 
@@ -188,7 +189,7 @@ def affine_terms(graph: Graph, weighting: Weighting) -> list[np.ndarray]:
       and ``leak(theta) = sum_k coefficients(theta)[k] * leak_basis[:, k]``.
     """
     if not weighting.affine:
-        raise ValueError(f"the {weighting.kind} weighting is not affine in its parameters")
+        raise FitrankInputError(f"the {weighting.kind} weighting is not affine in its parameters")
     unit = np.asarray(weighting.tables["unit"])
     rel = np.asarray(weighting.tables["rel"])
     return [np.where(rel == t, unit, 0.0) for t in range(graph.num_relations)]
@@ -270,7 +271,7 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         the box; the full check with enrichment follows it there.
     """
     if graph.features.shape[1] == 0:
-        raise ValueError("the features weighting needs numeric edge feature columns; the edge table has none")
+        raise FitrankInputError("the features weighting needs numeric edge feature columns; the edge table has none")
     center = graph.features.mean(axis=0)
     spread = graph.features.std(axis=0)
     spread = np.where(spread > 0, spread, 1.0)

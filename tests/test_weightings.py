@@ -1,0 +1,338 @@
+"""Checks of fitrank.weightings: names, defaults, sampling, local tables, row costs.
+
+The walk each weighting builds is checked against an independent
+implementation of DESIGN.md section 2 in tests/test_pagerank.py (through
+networkx and scipy); here the weighting's own contracts are checked.
+
+tests/test_pagerank.py imports the helpers defined here (``random_typed_graph``,
+``random_theta``, ``examples``, ``seeds``, ``shapes``).
+"""
+
+from __future__ import annotations
+
+import jax
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import stats
+
+from fitrank.graph import Graph, build_graph
+from fitrank.weightings import KINDS, affine_terms, make_weighting, row_cost
+
+
+def random_typed_graph(
+    seed: int,
+    n: int = 12,
+    num_relations: int = 2,
+    num_features: int = 2,
+    uniform_teleport: bool = False,
+) -> Graph:
+    """A small random typed, featured digraph with the awkward cases built in.
+
+    About a fifth of the nodes are dangling; n // 2 node pairs carry parallel
+    edges of two relations; self-loops occur; base weights are log-normal;
+    features have different offsets and spreads; the teleport vector is
+    non-uniform unless asked otherwise. The edge count depends on n and the
+    relation count only, so that JAX reuses its compiled kernels across seeds.
+
+    Args:
+      seed: numpy seed.
+      n: number of nodes (at least 2).
+      num_relations: number of relations; one gives the unlabelled relation "".
+      num_features: number of feature columns (may be 0).
+      uniform_teleport: leave the graph's teleport vector uniform.
+
+    Returns:
+      The graph, 3 n edges plus n // 2 parallel ones when num_relations > 1.
+    """
+    rng = np.random.default_rng(seed)
+    has_out = rng.random(n) > 0.2
+    has_out[rng.integers(n)] = True
+    num_edges = 3 * n
+    src = rng.choice(np.flatnonzero(has_out), num_edges)
+    dst = rng.integers(0, n, num_edges)
+    relation = rng.integers(0, num_relations, num_edges)
+    if num_relations > 1:  # the same pair again under another relation
+        again = rng.choice(num_edges, n // 2, replace=False)
+        src = np.concatenate([src, src[again]])
+        dst = np.concatenate([dst, dst[again]])
+        relation = np.concatenate([relation, (relation[again] + 1) % num_relations])
+    num_edges = src.size
+    base = rng.lognormal(0.0, 1.0, num_edges)
+    spread, offset = rng.uniform(0.3, 3.0, num_features), rng.normal(0, 5, num_features)
+    features = rng.normal(size=(num_edges, num_features)) * spread + offset
+    names = ("",) if num_relations == 1 else tuple(f"rel{t}" for t in range(num_relations))
+    teleport = None if uniform_teleport else rng.uniform(0.05, 1.0, n)
+    return build_graph(src, dst, n, base=base, relation=relation, relation_names=names, features=features,
+                       feature_names=tuple(f"f{k}" for k in range(num_features)), teleport=teleport)
+
+
+def transition_of(weighting, theta) -> np.ndarray:
+    """(E,) p_e of ``weighting`` at ``theta`` on the whole graph."""
+    return np.asarray(weighting.transition(np.asarray(theta, dtype=np.float64), weighting.tables))
+
+
+def leak_of(weighting, theta) -> np.ndarray:
+    """(n,) leak of ``weighting`` at ``theta``."""
+    return weighting.leak_basis @ np.asarray(weighting.leak_coefficients(np.asarray(theta, dtype=np.float64)))
+
+
+def random_theta(weighting, seed: int, spread: float = 1.0) -> np.ndarray:
+    """(p,) normal parameters with standard deviation ``spread``."""
+    return np.random.default_rng(seed).normal(0.0, spread, weighting.num_params)
+
+
+def examples(share: float) -> settings:
+    """A share of the active Hypothesis profile's examples (at least 5): every example here builds a
+    graph and runs JAX on new arrays, so these tests take fewer than the profile's default."""
+    return settings(max_examples=max(5, int(settings.default.max_examples * share)))
+
+
+seeds = st.integers(0, 2**31 - 1)
+shapes = st.sampled_from([(9, 1, 1), (12, 2, 2), (16, 3, 3)])
+"""(nodes, relations, features) of the random graphs: few distinct shapes keep JAX compilation rare."""
+
+
+# ----------------------------------------------------------------------------- names and defaults
+
+
+def test_parameter_names_and_default_theta():
+    graph = build_graph(np.array([0, 1, 1, 2]), np.array([1, 0, 2, 0]), 3, relation=np.array([0, 1, 1, 0]),
+                        relation_names=("cites", "links"), features=np.arange(8.0).reshape(4, 2) ** 2,
+                        feature_names=("age", "size"))
+    expected = {
+        "mixture": ("mix:cites", "mix:links"),
+        "scale": ("scale:cites", "scale:links"),
+        "features": ("feat:age", "feat:size"),
+    }
+    for kind in KINDS:
+        weighting = make_weighting(kind, graph)
+        assert weighting.kind == kind
+        assert weighting.param_names == expected[kind]
+        assert weighting.num_params == 2
+        np.testing.assert_array_equal(weighting.theta0, np.zeros(2))
+        assert weighting.named([0.5, -1.0]) == {expected[kind][0]: 0.5, expected[kind][1]: -1.0}
+    assert make_weighting("mixture", graph).affine and make_weighting("mixture", graph).closed_form_out_weight
+    assert not make_weighting("scale", graph).affine and make_weighting("scale", graph).closed_form_out_weight
+    assert not make_weighting("features", graph).affine and not make_weighting("features", graph).closed_form_out_weight
+
+
+def test_unlabelled_relation_gets_a_readable_name():
+    graph = build_graph(np.array([0, 1]), np.array([1, 0]), 2, features=np.ones((2, 1)), feature_names=("w",))
+    assert make_weighting("mixture", graph).param_names == ("mix:edge",)
+    assert make_weighting("scale", graph).param_names == ("scale:edge",)
+
+
+def test_default_theta_is_the_base_weighted_walk():
+    # At theta0 the scale and feature weightings are the plain walk p_e = b_e / sum of b over j's out-edges
+    # (DESIGN.md section 2 with theta = 0); the mixture gives every relation the same weight 1/T.
+    graph = random_typed_graph(7, n=15, num_relations=3)
+    out_weight = np.bincount(graph.src, weights=graph.base, minlength=graph.n)
+    plain = graph.base / out_weight[graph.src]
+    for kind in ("scale", "features"):
+        weighting = make_weighting(kind, graph)
+        np.testing.assert_allclose(transition_of(weighting, weighting.theta0), plain, rtol=1e-13)
+    mixture = make_weighting("mixture", graph)
+    per_relation = np.zeros((graph.n, graph.num_relations))
+    np.add.at(per_relation, (graph.src, graph.relation), graph.base)
+    expected = graph.base / per_relation[graph.src, graph.relation] / graph.num_relations
+    np.testing.assert_allclose(transition_of(mixture, mixture.theta0), expected, rtol=1e-13)
+
+
+def test_unknown_kind_is_refused():
+    graph = random_typed_graph(1)
+    with pytest.raises(ValueError, match="unknown weighting 'pagerank'"):
+        make_weighting("pagerank", graph)
+
+
+def test_features_weighting_refuses_a_graph_without_feature_columns():
+    graph = random_typed_graph(2, num_features=0)
+    with pytest.raises(ValueError, match="feature columns"):
+        make_weighting("features", graph)
+
+
+def test_constant_feature_column_has_no_effect():
+    # A constant column is centred to a constant, which the per-source normalisation cancels.
+    graph = random_typed_graph(3, n=12, num_features=2)
+    features = graph.features.copy()
+    features[:, 1] = 0.1
+    flat = build_graph(graph.src, graph.dst, graph.n, base=graph.base, features=features,
+                       feature_names=graph.feature_names)
+    weighting = make_weighting("features", flat)
+    np.testing.assert_allclose(transition_of(weighting, [0.7, 0.0]), transition_of(weighting, [0.7, 25.0]),
+                               rtol=1e-12)
+
+
+# ----------------------------------------------------------------------------- sampling
+
+
+@pytest.mark.parametrize("kind", ["scale", "features"])
+def test_box_samples_shape_domain_and_reproducibility(kind):
+    weighting = make_weighting(kind, random_typed_graph(4, num_relations=3, num_features=3))
+    theta = weighting.sample(64, seed=5)
+    assert theta.shape == (64, weighting.num_params)
+    assert np.all(np.isfinite(theta))
+    assert np.all(theta >= weighting.lower) and np.all(theta <= weighting.upper)
+    np.testing.assert_array_equal(theta, weighting.sample(64, seed=5))
+    assert not np.allclose(theta, weighting.sample(64, seed=6))
+    # The points fill the box: each coordinate reaches into both outer tenths.
+    span = weighting.upper - weighting.lower
+    assert np.all(theta.min(axis=0) < weighting.lower + 0.1 * span)
+    assert np.all(theta.max(axis=0) > weighting.upper - 0.1 * span)
+
+
+def test_mixture_samples_are_centred_log_weights_covering_the_simplex():
+    weighting = make_weighting("mixture", random_typed_graph(5, num_relations=3))
+    theta = weighting.sample(256, seed=11)
+    assert theta.shape == (256, 3)
+    assert np.all(np.isfinite(theta))
+    np.testing.assert_allclose(theta.mean(axis=1), 0.0, atol=1e-12)
+    np.testing.assert_array_equal(theta, weighting.sample(256, seed=11))
+    assert not np.allclose(theta, weighting.sample(256, seed=12))
+    w = np.asarray(jax.nn.softmax(theta, axis=1))
+    np.testing.assert_allclose(w.sum(axis=1), 1.0, rtol=1e-12)
+    # Every corner of the simplex is approached.
+    assert np.all(w.max(axis=0) > 0.85) and np.all(w.min(axis=0) < 0.02)
+    # Uniform on the simplex = Dirichlet(1, 1, 1), whose marginal is Beta(1, K - 1)
+    # (Devroye, "Non-Uniform Random Variate Generation", 1986, ch. XI.4); Kolmogorov-Smirnov
+    # distance from scipy.stats. 0.085 is the 5% critical value for 256 i.i.d. points (common
+    # practice: 1.36 / sqrt(m)); quasi-random points sit well inside it.
+    for t in range(3):
+        assert stats.kstest(w[:, t], stats.beta(1, 2).cdf).statistic < 1.36 / np.sqrt(256)
+
+
+# ----------------------------------------------------------------------------- the walk itself
+
+
+@examples(0.8)
+@given(seed=seeds, shape=shapes, kind=st.sampled_from(KINDS), spread=st.sampled_from([0.5, 3.0, 30.0]))
+def test_transition_columns_sum_to_one_minus_leak(seed, shape, kind, spread):
+    graph = random_typed_graph(seed, *shape)
+    weighting = make_weighting(kind, graph)
+    theta = random_theta(weighting, seed, spread)
+    p = transition_of(weighting, theta)
+    leak = leak_of(weighting, theta)
+    assert np.all(p >= 0) and np.all(np.isfinite(p))
+    assert np.all(leak >= -1e-15) and np.all(leak <= 1 + 1e-15)
+    column_sums = np.bincount(graph.src, weights=p, minlength=graph.n)
+    np.testing.assert_allclose(column_sums + leak, 1.0, atol=1e-13)
+    dangling = graph.out_degree() == 0
+    np.testing.assert_array_equal(column_sums[dangling], 0.0)
+    np.testing.assert_allclose(leak[dangling], 1.0, atol=1e-15)
+
+
+@examples(0.5)
+@given(seed=seeds, shape=shapes, kind=st.sampled_from(KINDS), fraction=st.sampled_from([0.0, 0.3, 1.0]))
+def test_local_tables_give_the_same_transition_as_the_full_tables(seed, shape, kind, fraction):
+    graph = random_typed_graph(seed, *shape)
+    weighting = make_weighting(kind, graph)
+    rng = np.random.default_rng(seed + 1)
+    theta = random_theta(weighting, seed)
+    edge_ids = rng.permutation(graph.num_edges)[: max(1, int(fraction * graph.num_edges))]
+    local = weighting.transition(theta, weighting.local_tables(edge_ids))
+    np.testing.assert_allclose(np.asarray(local), transition_of(weighting, theta)[edge_ids], rtol=1e-13, atol=0)
+
+
+def test_local_tables_of_the_in_edges_of_one_row():
+    # The unit a reduced model asks for: all in-edges of one node; here the busiest row, a
+    # middling one and an empty selection (each new size costs a JAX compilation).
+    graph = random_typed_graph(21, n=20, num_relations=2)
+    in_degree = graph.in_degree()
+    busiest, middling = int(np.argmax(in_degree)), int(np.argsort(in_degree)[graph.n // 2])
+    selections = [np.arange(graph.indptr[i], graph.indptr[i + 1]) for i in (busiest, middling)]
+    selections.append(np.zeros(0, dtype=np.int64))
+    for kind in KINDS:
+        weighting = make_weighting(kind, graph)
+        theta = random_theta(weighting, 0)
+        full = transition_of(weighting, theta)
+        for ids in selections:
+            np.testing.assert_allclose(np.asarray(weighting.transition(theta, weighting.local_tables(ids))),
+                                       full[ids], rtol=1e-13)
+
+
+@examples(0.5)
+@given(seed=seeds, shape=shapes)
+def test_affine_terms_reassemble_the_mixture(seed, shape):
+    graph = random_typed_graph(seed, *shape)
+    weighting = make_weighting("mixture", graph)
+    theta = random_theta(weighting, seed)
+    w = np.asarray(weighting.coefficients(theta))
+    terms = affine_terms(graph, weighting)
+    assert len(terms) == graph.num_relations and all(t.shape == (graph.num_edges,) for t in terms)
+    assembled = sum(w_k * graph.matrix(term) for w_k, term in zip(w, terms))
+    direct = graph.matrix(transition_of(weighting, theta))
+    assert abs(assembled - direct).max() < 1e-14
+    np.testing.assert_allclose(weighting.leak_basis @ w, leak_of(weighting, theta), atol=1e-15)
+    # Each term is the walk on one relation alone: columns sum to 1 where the node has that relation.
+    for t, term in enumerate(terms):
+        column_sums = np.bincount(graph.src, weights=term, minlength=graph.n)
+        has_relation = np.bincount(graph.src[graph.relation == t], minlength=graph.n) > 0
+        np.testing.assert_allclose(column_sums, has_relation.astype(float), atol=1e-14)
+        np.testing.assert_array_equal(weighting.leak_basis[:, t], (~has_relation).astype(float))
+
+
+@pytest.mark.parametrize("kind", ["scale", "features"])
+def test_affine_terms_refuse_a_non_affine_weighting(kind):
+    graph = random_typed_graph(8)
+    with pytest.raises(ValueError, match="not affine"):
+        affine_terms(graph, make_weighting(kind, graph))
+
+
+def test_scale_is_invariant_to_a_common_shift():
+    graph = random_typed_graph(9, num_relations=3)
+    weighting = make_weighting("scale", graph)
+    theta = np.array([0.3, -1.2, 0.8])
+    np.testing.assert_allclose(transition_of(weighting, theta + 40.0), transition_of(weighting, theta), rtol=1e-13)
+
+
+# ----------------------------------------------------------------------------- row costs
+
+
+def _brute_force_row_cost(graph: Graph, needs_out_edges: bool) -> np.ndarray:
+    """Edges read to form each row of P, counted one row at a time with sets."""
+    cost = np.zeros(graph.n, dtype=np.int64)
+    for i in range(graph.n):
+        in_edges = {e for e in range(graph.num_edges) if graph.dst[e] == i}
+        needed = set(in_edges)
+        if needs_out_edges:
+            neighbours = {int(graph.src[e]) for e in in_edges}
+            needed |= {e for e in range(graph.num_edges) if int(graph.src[e]) in neighbours}
+        cost[i] = len(needed)
+    return cost
+
+
+@examples(0.5)
+@given(seed=seeds, shape=shapes)
+def test_row_cost_matches_a_brute_force_count(seed, shape):
+    graph = random_typed_graph(seed, *shape)
+    for kind in KINDS:
+        weighting = make_weighting(kind, graph)
+        cost = row_cost(graph, weighting)
+        assert cost.shape == (graph.n,)
+        np.testing.assert_array_equal(cost, _brute_force_row_cost(graph, not weighting.closed_form_out_weight))
+
+
+def test_row_cost_is_what_the_local_tables_read():
+    graph = random_typed_graph(13, n=18, num_relations=2)
+    for kind in KINDS:
+        weighting = make_weighting(kind, graph)
+        cost = row_cost(graph, weighting)
+        for i in range(graph.n):
+            tables = weighting.local_tables(np.arange(graph.indptr[i], graph.indptr[i + 1]))
+            per_edge = tables["log_base"] if kind == "features" else tables["rel"]
+            assert per_edge.shape[0] == cost[i]
+
+
+def test_hub_in_neighbour_makes_a_row_expensive_only_without_closed_form():
+    # Node 0 is a hub with 50 out-edges, one of them into node 1 (DESIGN.md section 4).
+    n = 52
+    src = np.concatenate([np.zeros(50, dtype=np.int64), [1]])
+    dst = np.concatenate([np.arange(1, 51), [0]])
+    graph = build_graph(src, dst, n, features=np.arange(51.0), feature_names=("x",))
+    assert row_cost(graph, make_weighting("scale", graph))[1] == 1
+    assert row_cost(graph, make_weighting("features", graph))[1] == 50
+    # scipy's sparse pattern gives the same in-degrees (independent count).
+    pattern = sp.coo_matrix((np.ones(51), (dst, src)), shape=(n, n)).tocsr()
+    np.testing.assert_array_equal(row_cost(graph, make_weighting("mixture", graph)), np.diff(pattern.indptr))
