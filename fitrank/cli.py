@@ -43,7 +43,85 @@ def _parser() -> argparse.ArgumentParser:
     gen.add_argument("--force", action="store_true", help="replace OUT_DIR if it exists and is not empty")
     gen.set_defaults(func=_cmd_generate)
 
+    # --- build / fit / settings ------------------------------------------------
+    build = sub.add_parser("build", help="build and save the reduced model of a config (offline stage)")
+    _config_arguments(build)
+    build.set_defaults(func=_cmd_build)
+
+    fit = sub.add_parser("fit", help="learn the parameters of a config and write a run folder")
+    _config_arguments(fit)
+    fit.add_argument("--out", metavar="DIR", help="run folder (default: output.folder of the config)")
+    fit.add_argument("--quiet", action="store_true", help="no progress bars or progress lines")
+    fit.set_defaults(func=_cmd_fit)
+
+    show = sub.add_parser("settings", help="print the effective config (every key, defaults filled in)")
+    show.add_argument("config", metavar="CONFIG.toml", nargs="?", help="config file (omit with --reference)")
+    show.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE")
+    show.add_argument("--reference", action="store_true", help="print every key with type, default and meaning")
+    show.set_defaults(func=_cmd_settings)
+
     return parser
+
+
+def _config_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("config", metavar="CONFIG.toml")
+    parser.add_argument("--set", dest="overrides", action="append", default=[], metavar="SECTION.KEY=VALUE",
+                        help="override one config key (TOML value syntax); repeatable")
+
+
+def _cmd_build(args: argparse.Namespace) -> int:
+    import time
+
+    from fitrank.config import load_config
+    from fitrank.fit import model_path, prepare, reduction_settings
+    from fitrank.reduced import build_reduced_model
+    from fitrank.snapshots import local_executor
+
+    config = load_config(args.config, args.overrides)
+    start = time.perf_counter()
+    _, problem = prepare(config)
+    workers = config.reduction.workers
+    pool = local_executor(workers) if workers > 1 else None
+    try:
+        model = build_reduced_model(problem, reduction_settings(config), executor=pool)
+    finally:
+        if pool is not None:
+            pool.shutdown()
+    path = model.save(model_path(config))
+    info, s = model.info, model.basis.singular_values
+    decay = ", ".join(f"s{i + 1}/s1={s[i] / s[0]:.1e}" for i in sorted({0, 4, 9, 19, 49, model.rank - 1}) if i < s.size)
+    print(f"reduced model: {model.method}, k = {model.rank} (lost energy {model.basis.lost_energy:.1e}), "
+          f"{info['samples']} samples")
+    print(f"singular values: {decay}")
+    if model.method == "interpolation":
+        print(f"rows chosen: {info['rows']}, edges touched: {info['edges_touched']} "
+              f"({info['edges_touched_fraction']:.1%} of {problem.graph.num_edges})")
+    print(f"offline time: {time.perf_counter() - start:.1f} s "
+          f"(snapshots {info['timings']['snapshots_s']:.1f} s, basis {info['timings']['basis_s']:.1f} s, "
+          f"assembly {info['timings']['assemble_s']:.1f} s)")
+    print(f"saved {path}")
+    return 0
+
+
+def _cmd_fit(args: argparse.Namespace) -> int:
+    from fitrank.fit import fit, summary_lines
+
+    log = (lambda message: None) if args.quiet else (lambda message: print(message, file=sys.stderr))
+    result = fit(args.config, overrides=args.overrides, out=args.out, progress=not args.quiet, log=log)
+    print("\n".join(summary_lines(result)))
+    return 0
+
+
+def _cmd_settings(args: argparse.Namespace) -> int:
+    from fitrank.config import config_reference_markdown, effective_config, load_config
+
+    if args.reference:
+        print(config_reference_markdown())
+        return 0
+    if args.config is None:
+        raise FitrankInputError("give a CONFIG.toml, or --reference for the list of keys")
+    print(effective_config(load_config(args.config, args.overrides, check_files=False)), end="")
+    return 0
 
 
 def _cmd_generate(args: argparse.Namespace) -> int:

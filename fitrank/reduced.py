@@ -46,7 +46,9 @@ class ReductionSettings:
       energy: largest allowed lost energy 1 - sum_{i<=k} s_i^2 / sum s_i^2.
       max_rank: cap on k.
       rows: interpolation rows r (default 2 k).
-      gamma: cost weight of the row choice (0: pure pivoted QR).
+      gamma: cost weight of the row choice, in units of the average row's cost
+        (0: pure pivoted QR, which favours hubs; 1: a row of average cost must be
+        twice as informative as a free one).
       edge_budget: most edges the interpolation rows may need (None: no budget).
       probes: parameter points stacked for the row choice (default enough for r).
       seed: seed of sampling.
@@ -57,10 +59,10 @@ class ReductionSettings:
     method: str = "auto"
     samples: int = 128
     rank: int | None = None
-    energy: float = 1e-10
-    max_rank: int = 120
+    energy: float = 1e-8
+    max_rank: int = 100
     rows: int | None = None
-    gamma: float = 0.0
+    gamma: float = 1.0
     edge_budget: int | None = None
     probes: int | None = None
     seed: int = 0

@@ -1,0 +1,424 @@
+"""One fit, end to end: data -> reduced model -> training -> full check -> run folder.
+
+:func:`fit` is what ``fitrank fit`` runs and what a notebook calls:
+
+1. load the tables and build the weighting and the PageRank problem;
+2. load the saved reduced model when its fingerprint matches, else build it;
+3. train in the reduced space (or in the full space, the reference);
+4. check theta* with a full solve: pair accuracy and loss per split, full
+   against reduced, Kendall tau and normalised L1 on the top-k, and the
+   certified bound; when the check misses its tolerance, add the full solution
+   at theta* (and points of the optimisation path) to the snapshots, warm-start
+   and train again, up to ``check.enrich_rounds`` times;
+5. write the run folder atomically (a temporary folder renamed into place).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+import time
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from fitrank.config import Config, effective_config, load_config, with_overrides
+from fitrank.errors import FitrankInputError
+from fitrank.graph import SPLITS, Dataset
+from fitrank.metrics import kendall_tau_topk, l1_topk
+from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
+from fitrank.pagerank import PageRankProblem, certified_bound, solve_operator
+from fitrank.reduced import ReducedModel, ReductionSettings, build_reduced_model, enrich, load_reduced_model
+from fitrank.snapshots import local_executor
+from fitrank.tables import load_dataset
+from fitrank.train import TrainResult, train_full, train_reduced
+from fitrank.weightings import make_weighting
+
+RESULT_FILE = "result.json"
+MODEL_FILE = "model.npz"
+
+
+@dataclass(frozen=True, eq=False)
+class FitResult:
+    """What a fit produced; ``record`` is exactly what ``result.json`` holds.
+
+    Attributes:
+      theta: (p,) learned parameters.
+      params: ``{name: value}`` of theta.
+      record: the JSON-ready report (params, check, metrics, timings, model).
+      x: (n,) full PageRank vector at theta.
+      history: training history of every round (DataFrame, with a ``round`` column).
+      problem: the PageRank problem fitted.
+      model: the final reduced model (None for full-space training).
+      run_dir: the run folder written (None when not written).
+    """
+
+    theta: np.ndarray
+    params: dict
+    record: dict
+    x: np.ndarray
+    history: pd.DataFrame
+    problem: PageRankProblem
+    model: ReducedModel | None = None
+    run_dir: Path | None = None
+    dataset: Dataset | None = field(default=None, repr=False)
+
+
+def prepare(config: Config) -> tuple[Dataset, PageRankProblem]:
+    """Load the data of ``config`` and build its PageRank problem."""
+    data = config.data
+    dataset = load_dataset(data.edges, data.pairs, data.nodes, seed=config.training.split_seed,
+                           split_fractions=tuple(data.split))
+    graph = dataset.graph
+    options = {}
+    if config.weighting.bound is not None:
+        if config.weighting.kind == "mixture":
+            raise FitrankInputError("config key 'weighting.bound': the mixture samples its simplex and takes no "
+                                    "bound; remove the key")
+        options["bound"] = config.weighting.bound
+    try:
+        weighting = make_weighting(config.weighting.kind, graph, **options)
+    except ValueError as err:
+        raise FitrankInputError(f"config key 'weighting.kind': {err}") from None
+    teleport = np.full(graph.n, 1.0 / graph.n) if config.graph.teleport == "uniform" else graph.teleport
+    problem = PageRankProblem(graph, weighting, config.graph.damping, teleport, config.graph.dangling)
+    return dataset, problem
+
+
+def reduction_settings(config: Config) -> ReductionSettings:
+    r = config.reduction
+    return ReductionSettings(method=r.method, samples=r.samples, rank=r.rank, energy=r.energy,
+                             max_rank=r.max_rank, rows=r.rows,
+                             gamma=r.gamma, edge_budget=r.edge_budget or None, seed=r.seed,
+                             snapshot_tol=config.graph.solver_tol)
+
+
+def model_path(config: Config) -> Path:
+    """Where the reduced model of ``config`` is saved and looked for."""
+    given = config.reduction.model
+    return Path(given) if given else Path(config.output.folder) / MODEL_FILE
+
+
+def obtain_model(config: Config, problem: PageRankProblem, *, executor=None, progress: bool = True,
+                 log=print) -> tuple[ReducedModel, bool]:
+    """(model, reused): the saved model when it matches ``problem``, else a new one."""
+    path = model_path(config)
+    settings = reduction_settings(config)
+    if path.is_file():
+        try:
+            model = load_reduced_model(path, problem)
+        except FitrankInputError as err:
+            log(f"not reusing {path}: {err}")
+        else:
+            if _same_build(model.settings, settings):
+                log(f"reusing reduced model {path} (k = {model.rank})")
+                return model, True
+            log(f"not reusing {path}: it was built with other reduction settings")
+    own_pool = executor is None and config.reduction.workers > 1
+    pool = local_executor(config.reduction.workers) if own_pool else executor
+    try:
+        model = build_reduced_model(problem, settings, executor=pool, progress=progress)
+    finally:
+        if own_pool:
+            pool.shutdown()
+    return model, False
+
+
+def _same_build(a: ReductionSettings, b: ReductionSettings) -> bool:
+    keys = ("method", "samples", "rank", "energy", "max_rank", "rows", "gamma", "edge_budget", "seed")
+    return all(getattr(a, k) == getattr(b, k) for k in keys)
+
+
+def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, config: Config,
+               model: ReducedModel | None, spec: ObjectiveSpec) -> tuple[dict, np.ndarray]:
+    """Compare the reduced model with a full solve at ``theta``.
+
+    Returns:
+      (report, x): pair accuracy/loss per split for the full and the reduced
+      vectors, tau and normalised L1 on the top-k, the certified bound of the
+      reduced vector, ``passed``; and the full vector x (n,).
+    """
+    start = time.perf_counter()
+    op = problem.operator(theta)
+    solved = solve_operator(op, tol=config.graph.solver_tol)
+    x = solved.x
+    splits = {name: dataset.pairs.subset(name) for name in SPLITS}
+    report = {"full": {name: pair_summary(x, pairs, spec) for name, pairs in splits.items()},
+              "solver": {"iterations": solved.report.iterations, "bound": solved.report.bound,
+                         "method": solved.report.method}}
+    if model is not None:
+        y = model.vector(theta)
+        k = config.check.top_k
+        tau, l1 = kendall_tau_topk(x, y, k=k), l1_topk(x, y, k=k)
+        report["reduced"] = {name: pair_summary(y, pairs, spec) for name, pairs in splits.items()}
+        report.update({
+            "top_k": k,
+            "tau_topk": tau,
+            "l1_topk": l1,
+            "l1_error": float(np.abs(x - y).sum()),
+            "certified_bound": certified_bound(op, y),
+            "passed": bool(tau >= config.check.tau_min and l1 <= config.check.l1_max),
+        })
+    else:
+        report["passed"] = True
+    report["seconds"] = time.perf_counter() - start
+    return report, x
+
+
+def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = None, write: bool = True,
+        executor=None, progress: bool = True, log=print) -> FitResult:
+    """Fit the edge-weight parameters of ``config`` to its preference pairs.
+
+    Args:
+      config: a :class:`~fitrank.config.Config` or the path of a TOML file.
+      overrides: ``"section.key=value"`` strings applied on top.
+      out: run folder, default ``output.folder`` of the config.
+      write: write the run folder (False: only return the result).
+      executor: a ``concurrent.futures.Executor`` for the offline snapshot solves
+        (default: ``reduction.workers`` local processes, or this process).
+      progress: show progress bars.
+      log: where one-line progress messages go (``print`` by default).
+
+    Returns:
+      :class:`FitResult`.
+    """
+    started = time.perf_counter()
+    if not isinstance(config, Config):
+        config = load_config(config, overrides)
+    elif overrides:
+        config = with_overrides(config, overrides)
+    if out is not None:
+        config = replace(config, output=replace(config.output, folder=Path(out).resolve()))
+    run_dir = Path(config.output.folder)
+    if write:
+        _refuse_busy_folder(run_dir)
+    timings = {}
+    tick = time.perf_counter()
+    dataset, problem = prepare(config)
+    timings["load_s"] = time.perf_counter() - tick
+    graph, weighting = problem.graph, problem.weighting
+    train_pairs, valid_pairs = dataset.pairs.subset("train"), dataset.pairs.subset("valid")
+    if len(train_pairs) == 0:
+        raise FitrankInputError(f"{config.data.pairs}: no training pairs; give some pairs the split 'train'")
+    log(f"data: {graph.n} nodes, {graph.num_edges} edges, {len(dataset.pairs)} pairs "
+        f"({len(train_pairs)} train, {len(valid_pairs)} valid); weighting {weighting.kind} "
+        f"with {weighting.num_params} parameters")
+    tick = time.perf_counter()
+    x_start = problem.solve(weighting.theta0, tol=config.graph.solver_tol).x
+    spec = calibrate(config.training.objective_spec(), x_start, train_pairs, n=graph.n)
+    timings["theta0_solve_s"] = time.perf_counter() - tick
+    loop = config.training.loop_settings()
+    rounds, histories, model, reused = [], [], None, False
+    theta = weighting.theta0
+    if config.training.space == "full":
+        tick = time.perf_counter()
+        result = train_full(graph, weighting, train_pairs, spec, settings=loop, valid_pairs=valid_pairs,
+                            damping=problem.damping, teleport=problem.teleport, dangling=problem.dangling,
+                            tol=config.graph.solver_tol, progress=progress)
+        timings["training_s"] = time.perf_counter() - tick
+        theta = result.theta
+        check, x = full_check(problem, dataset, theta, config, None, spec)
+        rounds.append(_round_record(0, result, check, None))
+        histories.append(result.history_frame().assign(round=0))
+        step_s = result.per_step_seconds
+    else:
+        tick = time.perf_counter()
+        model, reused = obtain_model(config, problem, executor=executor, progress=progress, log=log)
+        timings["offline_s"] = time.perf_counter() - tick
+        log(f"reduced model: {model.method}, k = {model.rank}, rows = {model.info.get('rows', 0)}, "
+            f"edges touched = {model.info.get('edges_touched', 0)}"
+            + (" (reused)" if reused else f", built in {timings['offline_s']:.1f} s"))
+        timings["training_s"], timings["check_s"], step_times = 0.0, 0.0, []
+        for round_no in range(config.check.enrich_rounds + 1):
+            # training touches only the training pairs' nodes; validation has its own scorer
+            scorer = model.scorer(train_pairs.nodes())
+            valid_scorer = model.scorer(valid_pairs.nodes()) if len(valid_pairs) else None
+            tick = time.perf_counter()
+            result = train_reduced(scorer, train_pairs, spec, n=graph.n, theta0=weighting.theta0, settings=loop,
+                                   theta_init=theta, valid_pairs=valid_pairs, valid_scorer=valid_scorer,
+                                   progress=progress)
+            timings["training_s"] += time.perf_counter() - tick
+            step_times.append(result.per_step_seconds)
+            theta = result.theta
+            check, x = full_check(problem, dataset, theta, config, model, spec)
+            timings["check_s"] += check["seconds"]
+            rounds.append(_round_record(round_no, result, check, model))
+            histories.append(result.history_frame().assign(round=round_no))
+            log(f"round {round_no}: {result.steps} steps ({result.stopped_because}); full check "
+                f"tau@{check['top_k']} = {check['tau_topk']:.5f}, L1@{check['top_k']} = {check['l1_topk']:.2e}, "
+                f"bound = {check['certified_bound']:.2e} -> {'passed' if check['passed'] else 'failed'}")
+            if check["passed"] or round_no == config.check.enrich_rounds:
+                break
+            tick = time.perf_counter()
+            model = enrich(model, _enrichment_points(result, theta, config.check.path_points))
+            timings["enrich_s"] = timings.get("enrich_s", 0.0) + time.perf_counter() - tick
+        step_s = float(np.nanmedian(step_times)) if step_times else float("nan")
+    timings["online_step_s"] = step_s
+    timings["total_s"] = time.perf_counter() - started
+    record = _record(config, dataset, problem, theta, rounds, timings, model, reused)
+    record["loss"] = {"name": spec.loss, "param": spec.loss_param, "regularization": spec.regularization}
+    history = pd.concat(histories, ignore_index=True)
+    outcome = FitResult(theta, weighting.named(theta), record, x, history, problem, model,
+                        run_dir if write else None, dataset)
+    if write:
+        write_run(outcome, config, run_dir)
+    return outcome
+
+
+def _enrichment_points(result: TrainResult, theta: np.ndarray, path_points: int) -> np.ndarray:
+    points = [theta]
+    if path_points > 0 and len(result.path) > 1:
+        picks = np.linspace(0, len(result.path) - 1, path_points + 1, dtype=int)[:-1]
+        points.extend(result.path[i] for i in picks)
+    unique = np.unique(np.asarray(points), axis=0)
+    return unique
+
+
+def _round_record(round_no: int, result: TrainResult, check: dict, model: ReducedModel | None) -> dict:
+    return {
+        "round": round_no,
+        "steps": result.steps,
+        "stopped_because": result.stopped_because,
+        "best_valid_acc": result.best_valid_acc,
+        "per_step_s": result.per_step_seconds,
+        "k": model.rank if model is not None else None,
+        "check": {key: value for key, value in check.items() if key != "seconds"},
+        "check_s": check["seconds"],
+    }
+
+
+def _record(config, dataset, problem, theta, rounds, timings, model, reused) -> dict:
+    weighting = problem.weighting
+    final = rounds[-1]["check"]
+    record = {
+        "params": weighting.named(theta),
+        "theta0": weighting.named(weighting.theta0),
+        "weighting": weighting.kind,
+        "space": config.training.space,
+        "check": {"passed": bool(final["passed"]), "rounds": len(rounds),
+                  **{k: final[k] for k in ("tau_topk", "l1_topk", "certified_bound", "l1_error", "top_k")
+                     if k in final}},
+        "metrics": {"full": final["full"], **({"reduced": final["reduced"]} if "reduced" in final else {})},
+        "rounds": rounds,
+        "timings": timings,
+        "data": {"nodes": problem.graph.n, "edges": problem.graph.num_edges, "pairs": len(dataset.pairs),
+                 "notes": list(dataset.notes)},
+    }
+    if weighting.coefficients is not None:
+        record["mixture_weights"] = weighting.named(np.asarray(weighting.coefficients(np.asarray(theta))))
+    if model is not None:
+        record["model"] = {"method": model.method, "k": model.rank, "rows": model.info.get("rows", 0),
+                           "edges_touched": model.info.get("edges_touched", 0), "reused": reused,
+                           "fingerprint": problem.fingerprint(), "lost_energy": model.basis.lost_energy}
+    return _json_ready(record)
+
+
+def _json_ready(value):
+    if isinstance(value, dict):
+        return {str(k): _json_ready(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_json_ready(v) for v in value]
+    if isinstance(value, (np.floating, float)):
+        return None if not np.isfinite(value) else float(value)
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, np.bool_):
+        return bool(value)
+    return value
+
+
+def _refuse_busy_folder(run_dir: Path) -> None:
+    if run_dir.exists() and not run_dir.is_dir():
+        raise FitrankInputError(f"{run_dir}: the run folder path is a file; choose another output.folder")
+
+
+def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
+    """Write the run folder: effective config, result.json, history.csv, scores, plots, model.
+
+    Everything goes into a temporary sibling folder first and is renamed into
+    place at the end, so a failed run leaves any earlier run folder intact.
+    """
+    run_dir = Path(run_dir)
+    run_dir.parent.mkdir(parents=True, exist_ok=True)
+    staging = Path(tempfile.mkdtemp(prefix=f".{run_dir.name}.tmp-", dir=run_dir.parent))
+    try:
+        (staging / "config.toml").write_text(effective_config(config), encoding="utf-8")
+        (staging / RESULT_FILE).write_text(json.dumps(result.record, indent=2) + "\n", encoding="utf-8")
+        result.history.to_csv(staging / "history.csv", index=False)
+        graph = result.problem.graph
+        order = np.argsort(-result.x, kind="stable")
+        rank = np.empty(graph.n, dtype=np.int64)
+        rank[order] = np.arange(1, graph.n + 1)
+        ids = graph.node_ids
+        scores = pd.DataFrame({"node": ids if ids.dtype != object else ids.astype(str),
+                               "score": result.x, "rank": rank}).sort_values("rank")
+        scores.to_parquet(staging / "scores.parquet", index=False)
+        if result.model is not None:
+            result.model.save(staging / MODEL_FILE)
+        if config.output.plots:
+            _write_plots(result, staging)
+        os.chmod(staging, 0o755)
+        if run_dir.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{run_dir.name}.old-", dir=run_dir.parent))
+            os.rename(run_dir, old / "previous")
+            os.rename(staging, run_dir)
+            shutil.rmtree(old)
+        else:
+            os.rename(staging, run_dir)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    return run_dir
+
+
+def _write_plots(result: FitResult, folder: Path) -> None:
+    from fitrank.plots import plot_singular_values, plot_training, plot_weights
+
+    weighting = result.problem.weighting
+    plot_training(result.history, folder / "loss.png")
+    plot_weights(weighting.param_names, result.theta, weighting.theta0, folder / "weights.png")
+    if result.model is not None:
+        plot_singular_values(result.model.basis.singular_values, folder / "singular_values.png",
+                             rank=result.model.rank)
+
+
+def summary_lines(result: FitResult) -> list[str]:
+    """A short human summary of a fit: parameters, accuracy full vs reduced, the check, timings."""
+    record = result.record
+    lines = ["learned parameters:"]
+    width = max(len(name) for name in record["params"])
+    for name, value in record["params"].items():
+        extra = ""
+        if "mixture_weights" in record:
+            extra = f"   (weight {record['mixture_weights'][name]:.3f})"
+        lines.append(f"  {name:<{width}}  {value:+.4f}{extra}")
+    full = record["metrics"]["full"]
+    reduced = record["metrics"].get("reduced", {})
+    lines.append("pair accuracy       " + "  ".join(f"{name:>7s}" for name in SPLITS))
+    for label, block in (("full solve", full), ("reduced model", reduced)):
+        if block:
+            cells = "  ".join(_cell(block[name]["accuracy"]) for name in SPLITS)
+            lines.append(f"  {label:<18}{cells}")
+    check = record["check"]
+    if "tau_topk" in check:
+        lines.append(f"full check: {'passed' if check['passed'] else 'FAILED'} after {check['rounds']} round(s): "
+                     f"Kendall tau@{check['top_k']} {check['tau_topk']:.5f}, L1@{check['top_k']} "
+                     f"{check['l1_topk']:.2e}, certified L1 bound {check['certified_bound']:.2e}")
+    t = record["timings"]
+    parts = [f"total {t['total_s']:.1f} s"]
+    if "offline_s" in t:
+        parts.append(f"offline {t['offline_s']:.1f} s")
+    if t.get("online_step_s") is not None:
+        parts.append(f"per step {t['online_step_s'] * 1e3:.2f} ms")
+    lines.append("time: " + ", ".join(parts))
+    if result.run_dir is not None:
+        lines.append(f"run folder: {result.run_dir}")
+    return lines
+
+
+def _cell(value) -> str:
+    return "    n/a" if value is None or not np.isfinite(value) else f"{value:7.4f}"

@@ -1,0 +1,146 @@
+"""Accuracy measures: how far one ranking vector is from another, and how well
+scores agree with preference pairs.
+
+Three numbers, all computed with NumPy on plain arrays:
+
+* :func:`kendall_tau_topk`: Kendall's tau-b between a reference vector and an
+  approximation, both restricted to the reference's top-k nodes;
+* :func:`l1_topk`: normalised L1 error on those same nodes;
+* :func:`pair_accuracy`: weighted fraction of preference pairs that a score
+  vector orders correctly.
+
+The top-k of a vector is taken by value, largest first; equal values at the
+cut are broken by the lower node index so that the choice is deterministic.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from fitrank.graph import Pairs
+
+_BLOCK_ENTRIES = 4_000_000
+"""Pairwise sign matrices are built in row blocks of at most this many entries."""
+
+
+def top_k(x_ref: np.ndarray, k: int = 100) -> np.ndarray:
+    """Indices of the k largest entries of ``x_ref``, largest first.
+
+    Args:
+      x_ref: (n,) reference values.
+      k: how many; capped at n. Must be >= 1.
+
+    Returns:
+      (min(k, n),) int64 node indices; equal values are ordered by index.
+    """
+    x_ref = _vector(x_ref, "x_ref")
+    if int(k) < 1:
+        raise ValueError(f"top-k needs k >= 1, got {k}")
+    k = min(int(k), x_ref.shape[0])
+    # argsort is stable, so among equal values the lower index comes first.
+    return np.argsort(-x_ref, kind="stable")[:k].astype(np.int64)
+
+
+def kendall_tau_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100) -> float:
+    """Kendall's tau-b of ``x_ref`` and ``y`` on the top-k nodes of ``x_ref``.
+
+    tau_b = sum_{i<j} s_x(i,j) s_y(i,j) / sqrt(T_x T_y) with s(i, j) the sign of
+    the difference of the two entries and T the number of pairs that are not
+    tied in that vector; without ties it is (concordant - discordant) / (k(k-1)/2).
+    One swapped adjacent pair among k = 100 costs 2 / 4950, about 4e-4.
+
+    Cost: O(k^2) time, memory bounded by row blocks (k = 100: 10^4 pairs).
+
+    Args:
+      x_ref: (n,) reference vector (e.g. the full PageRank solution).
+      y: (n,) approximation on the same nodes.
+      k: size of the top set, capped at n.
+
+    Returns:
+      tau_b in [-1, 1]; NaN when either restricted vector is constant (tau is
+      undefined then) or k = 1.
+
+    References:
+      Kendall, "The treatment of ties in ranking problems", Biometrika 33(3),
+      1945 (tau-b).
+    """
+    x_ref, y = _same_length(x_ref, y)
+    top = top_k(x_ref, k)
+    a, b = x_ref[top], y[top]
+    agree = untied_a = untied_b = 0.0
+    rows = max(1, _BLOCK_ENTRIES // max(1, a.size))
+    for start in range(0, a.size, rows):
+        sa = np.sign(a[start:start + rows, None] - a[None, :])
+        sb = np.sign(b[start:start + rows, None] - b[None, :])
+        # Summing over all ordered pairs counts each pair twice in every term, so the ratio is unchanged.
+        agree += float(np.sum(sa * sb))
+        untied_a += float(np.sum(np.abs(sa)))
+        untied_b += float(np.sum(np.abs(sb)))
+    if untied_a == 0.0 or untied_b == 0.0:
+        return float("nan")
+    return agree / np.sqrt(untied_a * untied_b)
+
+
+def l1_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100) -> float:
+    """Normalised L1 error ||x_top - y_top||_1 / ||x_top||_1 on the top-k nodes of ``x_ref``.
+
+    Args:
+      x_ref: (n,) reference vector.
+      y: (n,) approximation.
+      k: size of the top set, capped at n.
+
+    Returns:
+      The relative error (>= 0); infinity when the reference's top-k is all zero
+      and y differs there, 0 when both are zero there.
+    """
+    x_ref, y = _same_length(x_ref, y)
+    top = top_k(x_ref, k)
+    error = float(np.abs(x_ref[top] - y[top]).sum())
+    scale = float(np.abs(x_ref[top]).sum())
+    if scale == 0.0:
+        return 0.0 if error == 0.0 else float("inf")
+    return error / scale
+
+
+def pair_accuracy(scores: np.ndarray, pairs: Pairs) -> float:
+    """Weighted fraction of pairs that ``scores`` orders as the pairs say.
+
+    A pair counts 1 when score[preferred] > score[other], 0 when it is below, and
+    1/2 on an exact tie: a tie is a coin flip, so a constant score vector gets
+    accuracy 0.5 rather than 0 or 1 (the convention of the Mann-Whitney U
+    statistic).
+
+    Args:
+      scores: (n,) one score per node (any positive multiple of x gives the same value).
+      pairs: the pairs; their node indices index ``scores``.
+
+    Returns:
+      sum_q w_q [1(s_a > s_b) + 1/2 1(s_a = s_b)] / sum_q w_q in [0, 1];
+      NaN when there are no pairs.
+
+    References:
+      Mann & Whitney, "On a test of whether one of two random variables is
+      stochastically larger than the other", Ann. Math. Statist. 18(1), 1947
+      (ties counted one half).
+    """
+    scores = _vector(scores, "scores")
+    if len(pairs) == 0:
+        return float("nan")
+    a, b = scores[pairs.preferred], scores[pairs.other]
+    hit = (a > b).astype(np.float64) + 0.5 * (a == b)
+    weight = np.asarray(pairs.weight, dtype=np.float64)
+    return float(np.dot(weight, hit) / weight.sum())
+
+
+def _vector(x, name: str) -> np.ndarray:
+    x = np.asarray(x, dtype=np.float64)
+    if x.ndim != 1:
+        raise ValueError(f"{name} must be a 1-d vector, got shape {x.shape}")
+    return x
+
+
+def _same_length(x_ref, y) -> tuple[np.ndarray, np.ndarray]:
+    x_ref, y = _vector(x_ref, "x_ref"), _vector(y, "y")
+    if x_ref.shape != y.shape:
+        raise ValueError(f"x_ref has shape {x_ref.shape} but y has shape {y.shape}; give both on the same nodes")
+    return x_ref, y
