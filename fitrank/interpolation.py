@@ -14,7 +14,7 @@ least-squares solve has fragile gradients at repeated singular values).
 
 Rows are picked by greedy pivoted QR on the rows of Z = [M(theta_1) U, ...,
 M(theta_q) U] (the Businger-Golub pivoting behind DEIM). The cost-aware variant
-scores a candidate by its residual norm / (1 + gamma * cost) and can honour a
+scores a candidate by its residual norm / (1 + gamma * cost / mean cost) and can honour a
 budget of touched edges. The greedy search is exact but lazy: a candidate's
 initial score bounds all its later ones, so only a pool of the best-bounded
 rows is ever updated, and it grows only when an outside row could still win.
@@ -77,7 +77,8 @@ def select_rows(
       stacked: (n, c) matrix whose rows are candidates (c >= count for ``count`` rows).
       count: number of rows r to pick.
       cost: (n,) non-negative cost of each row (edges it needs); default zeros.
-      gamma: cost weight; a row's score is residual_norm / (1 + gamma * cost).
+      gamma: cost weight; a row's score is residual_norm / (1 + gamma * cost / mean(cost)),
+        so with gamma = 1 a row of average cost must be twice as informative as a free one.
       budget: total cost allowed; rows that would exceed it are skipped.
       pool_size: rows added to the lazily updated pool at a time (default max(4r, 1024)).
 
@@ -88,7 +89,8 @@ def select_rows(
     stacked = np.asarray(stacked, dtype=np.float64)
     n, width = stacked.shape
     cost = np.zeros(n) if cost is None else np.asarray(cost, dtype=np.float64)
-    penalty = 1.0 + gamma * cost
+    # gamma is in units of the average row's cost, so one value suits graphs of any density
+    penalty = 1.0 + gamma * cost / max(cost.mean(), 1e-300)
     norm2 = np.einsum("ij,ij->i", stacked, stacked)
     bound = np.sqrt(norm2) / penalty  # a row's score can only fall as directions are removed
     order = np.argsort(-bound, kind="stable")
