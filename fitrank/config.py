@@ -104,7 +104,7 @@ class ReductionSection:
     samples: int = _key(200, "parameter points solved in full to build the basis", "int", low=2)
     rank: int | None = _key(None, "basis size k; \"auto\" = smallest k whose lost energy is <= energy", "int?",
                             low=1)
-    energy: float = _key(1e-8, "tolerance on the lost snapshot energy 1 - sum_{i<=k} s_i^2 / sum s_i^2", "float",
+    energy: float = _key(1e-10, "tolerance on the lost snapshot energy 1 - sum_{i<=k} s_i^2 / sum s_i^2", "float",
                          low=0.0, high=1.0, low_open=True, high_open=True)
     max_rank: int = _key(100, "largest basis size the energy rule may choose", "int", low=1)
     rows: int | None = _key(None, "interpolation rows r (>= k); \"auto\" = 2 k", "int?", low=1)

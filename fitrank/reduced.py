@@ -59,7 +59,7 @@ class ReductionSettings:
     method: str = "auto"
     samples: int = 128
     rank: int | None = None
-    energy: float = 1e-8
+    energy: float = 1e-10
     max_rank: int = 100
     rows: int | None = None
     gamma: float = 1.0
