@@ -199,3 +199,19 @@ def test_enrichment_repairs_a_too_small_basis():
 def test_galerkin_refused_for_non_affine_weighting():
     with pytest.raises(FitrankInputError, match="affine"):
         build_reduced_model(_problem("scale"), ReductionSettings(method="galerkin", samples=4), progress=False)
+
+
+def test_snapshots_on_local_processes_and_on_a_dask_executor():
+    # the offline stage takes any concurrent.futures.Executor: local processes and Dask's alike
+    distributed = pytest.importorskip("distributed")
+    from fitrank.snapshots import local_executor
+
+    problem = _problem("mixture")
+    thetas = problem.weighting.sample(4, seed=3)
+    serial = solve_snapshots(problem, thetas, progress=False)
+    with local_executor(2) as pool:
+        in_processes = solve_snapshots(problem, thetas, executor=pool, progress=False)
+    np.testing.assert_allclose(in_processes, serial, rtol=0, atol=1e-12)
+    with distributed.Client(processes=False, n_workers=1, threads_per_worker=2, dashboard_address=None) as client:
+        on_dask = solve_snapshots(problem, thetas, executor=client.get_executor(), progress=False)
+    np.testing.assert_allclose(on_dask, serial, rtol=0, atol=1e-12)
