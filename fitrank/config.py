@@ -115,6 +115,8 @@ class ReductionSection:
     workers: int = _key(1, "processes for the full solves of the offline stage", "int", low=1)
     model: Path | None = _key(None, "reduced-model file to reuse or create; \"\" = model.npz in the run folder",
                               "path?")
+    snapshot_file: Path | None = _key(None, "memory-mapped .npy file for the snapshot matrix (for graphs whose "
+                                            "n x samples matrix should not sit in RAM); \"\" = in memory", "path?")
 
 
 @dataclass(frozen=True)

@@ -94,7 +94,8 @@ def reduction_settings(config: Config) -> ReductionSettings:
     return ReductionSettings(method=r.method, samples=r.samples, rank=r.rank, energy=r.energy,
                              max_rank=r.max_rank, rows=r.rows,
                              gamma=r.gamma, edge_budget=r.edge_budget or None, seed=r.seed,
-                             snapshot_tol=config.graph.solver_tol)
+                             snapshot_tol=config.graph.solver_tol,
+                             snapshot_path=str(r.snapshot_file) if r.snapshot_file else None)
 
 
 def model_path(config: Config) -> Path:

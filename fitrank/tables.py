@@ -57,6 +57,7 @@ Everything is vectorised (Arrow and NumPy); no Python loop runs over rows.
 from __future__ import annotations
 
 import re
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
@@ -135,24 +136,16 @@ def read_edges(edges: str | Path, nodes: str | Path | None = None, *, notes: lis
     table = _read_table(edges, text_columns=("source", "target", "relation"))
     _require_columns(table, edges, required=("source", "target"))
     num_rows = table.num_rows
-    id_columns = [_ids(table, "source", edges), _ids(table, "target", edges)]
+    id_columns = [_id_factors(table, "source", edges), _id_factors(table, "target", edges)]
     node_table = None
     if nodes is not None:
         node_table = _read_table(nodes, text_columns=("node",))
         _require_columns(node_table, nodes, required=("node",), allowed=NODE_COLUMNS)
-        id_columns.append(_ids(node_table, "node", nodes))
-    id_columns = _common_id_type(id_columns)
-
-    # Row by row, source before target: indices follow first appearance as a person reads the file.
-    interleave = np.empty(2 * num_rows, dtype=np.int64)
-    interleave[0::2] = np.arange(num_rows)
-    interleave[1::2] = np.arange(num_rows, 2 * num_rows)
-    edge_ids = pa.concat_arrays(id_columns[:2]).take(pa.array(interleave))
-    encoded = pc.dictionary_encode(pa.concat_arrays([edge_ids, *id_columns[2:]]))
-    codes = encoded.indices.to_numpy(zero_copy_only=False).astype(np.int64)
-    node_ids = encoded.dictionary.to_numpy(zero_copy_only=False)
+        id_columns.append(_id_factors(node_table, "node", nodes))
+    # Row by row, source before target, then the node table: cell positions 2r, 2r + 1, 2E + r.
+    positions = [(2, 0), (2, 1), (1, 2 * num_rows)][: len(id_columns)]
+    node_ids, (src, dst, *node_codes), first_position = _number_nodes(id_columns, positions)
     n = len(node_ids)
-    src, dst = codes[0 : 2 * num_rows : 2], codes[1 : 2 * num_rows : 2]
 
     base = np.ones(num_rows)
     if "weight" in table.column_names:
@@ -164,10 +157,12 @@ def read_edges(edges: str | Path, nodes: str | Path | None = None, *, notes: lis
     feature_names = tuple(c for c in table.column_names if c not in EDGE_COLUMNS)
     features = _features(table, edges, feature_names)
 
-    src, dst, relation, base, features, merged = _merge_duplicate_edges(
-        src, dst, relation, base, features, n, len(relation_names)
-    )
+    order, starts_triple = _sort_edges(src, dst, relation, n, len(relation_names))
+    src, dst, relation, base = src[order], dst[order], relation[order], base[order]
+    features = np.take(features, order, axis=0)  # np.take, unlike features[order], gathers whole rows at once
+    merged = num_rows - int(np.count_nonzero(starts_triple))
     if merged:
+        src, dst, relation, base, features = _merge_duplicate_edges(src, dst, relation, base, features, starts_triple)
         notes.append(
             f"{edges}: rows repeating an earlier row's (source, target, relation), merged into it "
             f"(base weights summed, features averaged weighted by base weight): {merged}"
@@ -178,10 +173,9 @@ def read_edges(edges: str | Path, nodes: str | Path | None = None, *, notes: lis
 
     teleport = None
     if node_table is not None:
-        node_codes = codes[2 * num_rows :]
+        node_codes = node_codes[0]
         _refuse_duplicate_nodes(node_codes, node_ids, nodes)
-        # Edge-table ids were encoded first, so they hold the dictionary's leading positions.
-        isolated = n - int(codes[: 2 * num_rows].max()) - 1
+        isolated = int(np.count_nonzero(first_position >= 2 * num_rows))
         if isolated:
             notes.append(f"{nodes}: nodes without any edge, added as isolated nodes: {isolated}")
         if "teleport" in node_table.column_names:
@@ -228,22 +222,25 @@ def read_pairs(
     table = _read_table(path, text_columns=("preferred", "other", "split"))
     _require_columns(table, path, required=("preferred", "other"), allowed=PAIR_COLUMNS)
     q = table.num_rows
-    preferred_ids, other_ids = _common_id_type([_ids(table, "preferred", path), _ids(table, "other", path)])
-    index = _lookup(pa.concat_arrays([preferred_ids, other_ids]), pa.array(graph.node_ids))
-    preferred, other = index[:q], index[q:]
+    factors = [_id_factors(table, "preferred", path), _id_factors(table, "other", path)]
+    values = _common_id_type([f.values for f in factors])
+    graph_ids = pa.array(graph.node_ids)
+    preferred, other = (_lookup(ids, graph_ids)[f.codes] for ids, f in zip(values, factors))
+
+    def node(side: int, row: int):
+        return values[side][int(factors[side].codes[row])].as_py()
 
     unknown = (preferred < 0) | (other < 0)
     if unknown.any():
         row = int(unknown.argmax())
-        column, ids = ("preferred", preferred_ids) if preferred[row] < 0 else ("other", other_ids)
+        side = 0 if preferred[row] < 0 else 1
         raise DataError(
-            path, f"unknown node {ids[row].as_py()!r}: it is in neither the edge nor the node table", row + 1, column
+            path,
+            f"unknown node {node(side, row)!r}: it is in neither the edge nor the node table",
+            row + 1,
+            PAIR_COLUMNS[side],
         )
-    _raise_first(
-        path,
-        preferred == other,
-        lambda r: f"preferred and other are the same node {preferred_ids[r].as_py()!r}",
-    )
+    _raise_first(path, preferred == other, lambda r: f"preferred and other are the same node {node(0, r)!r}")
 
     weight = np.ones(q)
     if "weight" in table.column_names:
@@ -309,7 +306,7 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
     if not file.is_file():
         raise DataError(path, "not a regular file")
     try:
-        table = _read_csv(file, text_columns) if kind == "CSV" else pq.read_table(file)
+        table = _read_csv(file, text_columns) if kind == "CSV" else _read_parquet(file, text_columns)
     except (pa.ArrowException, OSError) as err:
         message = (str(err).strip().splitlines() or [type(err).__name__])[0]
         if "Empty CSV file" in message:
@@ -327,12 +324,22 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
     return table
 
 
+# Label-like columns are read dictionary-encoded: the readers then hash each cell once while
+# parsing, and everything after works on the few distinct values (see _factorise).
+_LABELS = pa.dictionary(pa.int32(), pa.string())
+
+
 def _read_csv(file: Path, text_columns: tuple[str, ...], use_threads: bool = True) -> pa.Table:
     return pacsv.read_csv(
         file,
         read_options=pacsv.ReadOptions(use_threads=use_threads),
-        convert_options=pacsv.ConvertOptions(column_types=dict.fromkeys(text_columns, pa.string())),
+        convert_options=pacsv.ConvertOptions(column_types=dict.fromkeys(text_columns, _LABELS)),
     )
+
+
+def _read_parquet(file: Path, text_columns: tuple[str, ...]) -> pa.Table:
+    # read_dictionary applies to text (byte-array) columns only; numeric columns are read as they are.
+    return pq.read_table(file, read_dictionary=list(text_columns), memory_map=True)
 
 
 def _csv_error_row(file: Path, text_columns: tuple[str, ...], message: str) -> tuple[int | None, str]:
@@ -390,30 +397,127 @@ def _missing_text(array: pa.Array) -> np.ndarray:
     return pc.fill_null(missing, True).to_numpy(zero_copy_only=False)
 
 
-def _ids(table: pa.Table, column: str, path: str | Path) -> pa.Array:
-    """(rows,) node ids of one column as an int64 or large_string Arrow array."""
-    array = _plain(table.column(column))
-    if pa.types.is_integer(array.type):
-        _raise_first(path, array.is_null().to_numpy(zero_copy_only=False), lambda r: "missing node id", column)
+@dataclass(frozen=True)
+class _Factors:
+    """A column as codes into its distinct values.
+
+    Attributes:
+      codes: (rows,) int64 position of each cell's value in ``values``; -1 for a null cell.
+      values: (K,) the distinct non-null values, each used by at least one cell.
+      first_row: (K,) int64 0-based row where each value first appears.
+      first_null: 0-based row of the first null cell, or None.
+    """
+
+    codes: np.ndarray
+    values: pa.Array
+    first_row: np.ndarray
+    first_null: int | None
+
+    def first_row_of(self, bad: np.ndarray, nulls_too: bool = False) -> int | None:
+        """The first 0-based row whose value is flagged in ``bad`` (K,) (or, with ``nulls_too``, is null)."""
+        rows = [int(self.first_row[bad].min())] if bad.any() else []
+        if nulls_too and self.first_null is not None:
+            rows.append(self.first_null)
+        return min(rows) if rows else None
+
+
+def _factorise(column: pa.ChunkedArray) -> _Factors:
+    """Split a column into codes and distinct values with one hash pass over the cells.
+
+    Validation and conversion then run on the K distinct values instead of on
+    every cell: for node ids and relation labels K is far smaller than the row count.
+    """
+    if pa.types.is_dictionary(column.type):
+        encoded = (column.unify_dictionaries() if column.num_chunks > 1 else column).combine_chunks()
+    else:
+        # One array first: encoding chunk by chunk gives each chunk its own dictionary,
+        # and unifying tens of large dictionaries costs several times the encoding itself.
+        encoded = pc.dictionary_encode(column.combine_chunks())
+    indices = pc.fill_null(encoded.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+    # A dictionary read from a file may repeat a value, hold a null or hold a value no cell uses:
+    # encode it once more (it is small) so that the values come out distinct, non-null and used.
+    dictionary = pc.dictionary_encode(encoded.dictionary)
+    remap = pc.fill_null(dictionary.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
+    codes = np.append(remap, -1)[indices]  # index -1 (a null cell) maps to the appended -1
+    rows = codes.shape[0]
+    null = codes < 0
+    first_null = int(null.argmax()) if null.any() else None
+    cells = np.arange(rows)
+    first_row = np.full(len(dictionary.dictionary), rows, dtype=np.int64)
+    if first_null is None:
+        np.minimum.at(first_row, codes, cells)
+    else:
+        np.minimum.at(first_row, codes[~null], cells[~null])
+    used = first_row < rows
+    if used.all():
+        return _Factors(codes, dictionary.dictionary, first_row, first_null)
+    position = np.cumsum(used) - 1
+    codes = np.where(null, -1, position[codes])
+    return _Factors(codes, dictionary.dictionary.filter(pa.array(used)), first_row[used], first_null)
+
+
+def _raise_at(path: str | Path, row: int | None, problem: str, column: str | None = None) -> None:
+    """Raise a DataError at 0-based ``row`` unless it is None."""
+    if row is not None:
+        raise DataError(path, problem, row + 1, column)
+
+
+def _id_factors(table: pa.Table, column: str, path: str | Path) -> _Factors:
+    """The node ids of one column, checked, as codes into distinct int64 or large_string values."""
+    ids = _factorise(table.column(column))
+    values = ids.values
+    if pa.types.is_integer(values.type):
+        _raise_at(path, ids.first_null, "missing node id", column)
         try:
-            return array.cast(pa.int64())
+            values = values.cast(pa.int64())
         except pa.ArrowInvalid:
             raise DataError(path, "node ids do not fit a 64-bit signed integer", column=column) from None
-    if pa.types.is_floating(array.type):
-        values = array.cast(pa.float64()).to_numpy(zero_copy_only=False)
-        _raise_first(path, np.isnan(values), lambda r: "missing node id", column)
-        _raise_first(
-            path,
-            ~np.isfinite(values) | (values != np.round(values)) | (np.abs(values) >= 2.0**63),
-            lambda r: f"node id {float(values[r])!r} is not an integer; ids must be integers or text",
-            column,
-        )
-        return pa.array(values.astype(np.int64))
-    if _is_text(array):
-        array = array.cast(pa.large_string())
-        _raise_first(path, _missing_text(array), lambda r: "missing node id (empty cell or NaN)", column)
-        return array
-    raise DataError(path, f"node ids must be integers or text, not {array.type}", column=column)
+    elif pa.types.is_floating(values.type):
+        numbers = values.cast(pa.float64()).to_numpy(zero_copy_only=False)
+        _raise_at(path, ids.first_row_of(np.isnan(numbers), nulls_too=True), "missing node id", column)
+        bad = ~np.isfinite(numbers) | (numbers != np.round(numbers)) | (np.abs(numbers) >= 2.0**63)
+        row = ids.first_row_of(bad)
+        if row is not None:
+            value = float(numbers[ids.codes[row]])
+            raise DataError(path, f"node id {value!r} is not an integer; ids must be integers or text", row + 1, column)
+        values = pa.array(numbers.astype(np.int64))
+    elif _is_text(values):
+        values = values.cast(pa.large_string())
+        row = ids.first_row_of(_missing_text(values), nulls_too=True)
+        _raise_at(path, row, "missing node id (empty cell or NaN)", column)
+    else:
+        raise DataError(path, f"node ids must be integers or text, not {values.type}", column=column)
+    return _Factors(ids.codes, values, ids.first_row, ids.first_null)
+
+
+def _number_nodes(
+    columns: list[_Factors], positions: list[tuple[int, int]]
+) -> tuple[np.ndarray, list[np.ndarray], np.ndarray]:
+    """Node indices 0..n-1 in order of first appearance over several id columns.
+
+    Args:
+      columns: the checked id columns (no null cell); their values are brought
+        to one type by :func:`_common_id_type`.
+      positions: per column (stride, offset): row r of that column is read at
+        position ``stride * r + offset``, positions distinct over all cells.
+
+    Returns:
+      node_ids (n,) (int64, or object array of str), per column the (rows,)
+      int64 node index of each cell, and (n,) the position where each node is first read.
+    """
+    values = _common_id_type([c.values for c in columns])
+    union = pc.dictionary_encode(pa.concat_arrays(values))
+    slot = union.indices.to_numpy(zero_copy_only=False).astype(np.int64)
+    first = np.full(len(union.dictionary), np.iinfo(np.int64).max)
+    bounds = np.cumsum([0] + [len(v) for v in values])
+    for c, (stride, offset), lo, hi in zip(columns, positions, bounds[:-1], bounds[1:]):
+        np.minimum.at(first, slot[lo:hi], c.first_row * stride + offset)
+    order = np.argsort(first)
+    rank = np.empty_like(order)
+    rank[order] = np.arange(order.shape[0])
+    node_ids = union.dictionary.take(pa.array(order)).to_numpy(zero_copy_only=False)
+    codes = [rank[slot[lo:hi]][c.codes] for c, lo, hi in zip(columns, bounds[:-1], bounds[1:])]
+    return node_ids, codes, first[order]
 
 
 def _canonical_ints(array: pa.Array) -> pa.Array | None:
@@ -471,18 +575,16 @@ def _require_positive(values: np.ndarray, path: str | Path, column: str, allow_z
 
 def _relations(table: pa.Table, path: str | Path) -> tuple[np.ndarray, tuple[str, ...]]:
     """(E,) int64 relation codes and the labels, sorted as text, they index."""
-    array = _plain(table.column("relation"))
-    if not (pa.types.is_integer(array.type) or _is_text(array)):
-        raise DataError(path, f"relation labels must be text or integers, not {array.type}", column="relation")
-    array = array.cast(pa.large_string())
-    _raise_first(path, _missing_text(array), lambda r: "missing relation label", "relation")
-    encoded = pc.dictionary_encode(array)
-    labels = encoded.dictionary.to_pylist()
-    order = np.argsort(np.array(labels, dtype=object), kind="stable")
-    rank = np.empty(len(labels), dtype=np.int64)
-    rank[order] = np.arange(len(labels))
-    codes = rank[encoded.indices.to_numpy(zero_copy_only=False)]
-    return codes, tuple(labels[i] for i in order)
+    labels = _factorise(table.column("relation"))
+    if not (pa.types.is_integer(labels.values.type) or _is_text(labels.values)):
+        raise DataError(path, f"relation labels must be text or integers, not {labels.values.type}", column="relation")
+    text = labels.values.cast(pa.large_string())
+    _raise_at(path, labels.first_row_of(_missing_text(text), nulls_too=True), "missing relation label", "relation")
+    names = text.to_pylist()
+    order = np.argsort(np.array(names, dtype=object), kind="stable")
+    rank = np.empty(len(names), dtype=np.int64)
+    rank[order] = np.arange(len(names))
+    return rank[labels.codes], tuple(names[i] for i in order)
 
 
 def _features(table: pa.Table, path: str | Path, names: tuple[str, ...]) -> np.ndarray:
@@ -497,47 +599,72 @@ def _features(table: pa.Table, path: str | Path, names: tuple[str, ...]) -> np.n
     return features
 
 
+def _sort_edges(
+    src: np.ndarray, dst: np.ndarray, relation: np.ndarray, n: int, num_relations: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """The order of the edges by (dst, src, relation), and where each triple starts.
+
+    Returns:
+      order (E,) int64 permutation of the rows; starts (E,) bool, True where the
+      sorted row's triple differs from the row before (always True at 0).
+    """
+    rows = src.shape[0]
+    index_bits = max(rows - 1, 1).bit_length()
+    num_keys = n * n * num_relations  # Python int: no overflow
+    if num_keys <= 2 ** (64 - index_bits):
+        # Row index packed below the key: one plain sort of integers (much faster than an
+        # argsort), and rows with the same triple stay in file order.
+        packed = ((dst * n + src) * num_relations + relation).astype(np.uint64)
+        packed <<= np.uint64(index_bits)
+        packed |= np.arange(rows, dtype=np.uint64)
+        packed.sort()
+        order = (packed & np.uint64((1 << index_bits) - 1)).astype(np.int64)
+        key = packed >> np.uint64(index_bits)
+    elif num_keys < 2**63:
+        key = (dst * n + src) * num_relations + relation
+        order = np.argsort(key)  # not stable: only the summation order of duplicates depends on it
+        key = key[order]
+    else:  # n too large for one int64 key
+        order = np.lexsort((relation, src, dst))
+        triples = np.stack([dst[order], src[order], relation[order]])
+        starts = np.ones(rows, dtype=bool)
+        starts[1:] = (triples[:, 1:] != triples[:, :-1]).any(axis=0)
+        return order, starts
+    starts = np.empty(rows, dtype=bool)
+    starts[:1] = True
+    np.not_equal(key[1:], key[:-1], out=starts[1:])
+    return order, starts
+
+
 def _merge_duplicate_edges(
     src: np.ndarray,
     dst: np.ndarray,
     relation: np.ndarray,
     base: np.ndarray,
     features: np.ndarray,
-    n: int,
-    num_relations: int,
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray, int]:
-    """Sort edges by (dst, src, relation) and merge rows with the same triple.
+    starts: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Merge the sorted rows of each (source, target, relation) triple into one edge.
+
+    Args:
+      src, dst, relation, base: (E,) rows sorted by :func:`_sort_edges`.
+      features: (E, f) in the same order.
+      starts: (E,) bool, True where a new triple starts.
 
     Returns:
-      src, dst, relation, base (E',), features (E', f) and E - E', the number
-      of rows merged away. Merged base weights are summed; merged features are
-      base-weight-weighted means (an unmerged edge keeps its features bit for bit).
+      src, dst, relation, base (E',) and features (E', f). Merged base weights
+      are summed; merged features are base-weight-weighted means (an unmerged
+      edge keeps its features bit for bit).
     """
-    if float(n) * n * num_relations < 2.0**62:
-        key = (dst * n + src) * num_relations + relation
-        order = np.argsort(key)  # not stable: only the summation order of duplicates depends on it
-        key = key[order]
-        new = np.empty(key.shape[0], dtype=bool)
-        new[:1] = True
-        np.not_equal(key[1:], key[:-1], out=new[1:])
-    else:  # n too large for one int64 key
-        order = np.lexsort((relation, src, dst))
-        triples = np.stack([dst[order], src[order], relation[order]])
-        new = np.ones(order.shape[0], dtype=bool)
-        new[1:] = (triples[:, 1:] != triples[:, :-1]).any(axis=0)
-    src, dst, relation, base, features = src[order], dst[order], relation[order], base[order], features[order]
-    if new.all():
-        return src, dst, relation, base, features, 0
-    starts = np.flatnonzero(new)
-    sizes = np.diff(np.append(starts, new.shape[0]))
-    summed = np.add.reduceat(base, starts)
-    merged_features = features[starts]
+    first = np.flatnonzero(starts)
+    sizes = np.diff(np.append(first, starts.shape[0]))
+    summed = np.add.reduceat(base, first)
+    merged_features = features[first]
     groups = sizes > 1
     if features.shape[1] and groups.any():
-        weighted = np.add.reduceat(features * base[:, None], starts, axis=0)
+        weighted = np.add.reduceat(features * base[:, None], first, axis=0)
         merged_features[groups] = weighted[groups] / summed[groups, None]
-    merged = int(new.shape[0] - starts.shape[0])
-    return src[starts], dst[starts], relation[starts], summed, merged_features, merged
+    return src[first], dst[first], relation[first], summed, merged_features
 
 
 # --------------------------------------------------------------------------- node table
