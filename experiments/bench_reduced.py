@@ -28,7 +28,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from _timing import median_seconds  # noqa: E402  (also puts the checkout on sys.path)
 
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
 from fitrank.metrics import kendall_tau_topk, l1_topk  # noqa: E402
@@ -36,15 +36,6 @@ from fitrank.pagerank import PageRankProblem  # noqa: E402
 from fitrank.reduced import ReductionSettings, build_reduced_model  # noqa: E402
 from fitrank.tables import load_dataset  # noqa: E402
 from fitrank.weightings import make_weighting  # noqa: E402
-
-
-def median_seconds(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return float(np.median(times))
 
 
 def online_seconds(model, nodes, thetas, repeats=200) -> float:

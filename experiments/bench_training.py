@@ -31,20 +31,11 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from _timing import median_seconds  # noqa: E402  (also puts the checkout on sys.path)
 
 from fitrank.fit import fit  # noqa: E402
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
 from fitrank.objective import full_objective, reduced_objective  # noqa: E402
-
-
-def median_call_seconds(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        start = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - start)
-    return float(np.median(times))
 
 
 def step_times(result, repeats: int) -> dict:
@@ -68,7 +59,7 @@ def step_times(result, repeats: int) -> dict:
             value, grad = reduced.value_and_grad(jnp.asarray(point), reduced.arrays)
             jax.block_until_ready(grad)
 
-    reduced_s = median_call_seconds(reduced_calls, 5) / len(points)
+    reduced_s = median_seconds(reduced_calls, 5) / len(points)
     full, _ = full_objective(problem.graph, problem.weighting, train, spec, theta0=problem.weighting.theta0,
                              damping=problem.damping, teleport=problem.teleport, dangling=problem.dangling)
     full(points[0])  # warm start and compile, as after the first step of a run

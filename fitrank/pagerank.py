@@ -177,6 +177,14 @@ def check_teleport(teleport, n: int) -> np.ndarray:
     return v / total
 
 
+def check_walk_settings(damping: float, dangling: str) -> None:
+    """Raise FitrankInputError unless 0 < damping < 1 and ``dangling`` is a known policy."""
+    if not 0.0 < damping < 1.0:
+        raise FitrankInputError(f"damping must be strictly between 0 and 1, got {damping}")
+    if dangling not in DANGLING_POLICIES:
+        raise FitrankInputError(f"dangling policy must be one of {DANGLING_POLICIES}, got '{dangling}'")
+
+
 def walk_operator(
     graph: Graph,
     weighting: Weighting,
@@ -200,10 +208,7 @@ def walk_operator(
     Returns:
       The operator; building it costs one evaluation of the weighting on all edges.
     """
-    if not 0.0 < damping < 1.0:
-        raise FitrankInputError(f"damping must be strictly between 0 and 1, got {damping}")
-    if dangling not in DANGLING_POLICIES:
-        raise FitrankInputError(f"dangling policy must be one of {DANGLING_POLICIES}, got '{dangling}'")
+    check_walk_settings(damping, dangling)
     theta = jnp.asarray(theta, dtype=jnp.float64)
     if theta.shape != (weighting.num_params,):
         raise FitrankInputError(
@@ -466,10 +471,7 @@ class PageRankProblem:
     dangling: str = "teleport"
 
     def __post_init__(self):
-        if not 0.0 < self.damping < 1.0:
-            raise FitrankInputError(f"damping must be strictly between 0 and 1, got {self.damping}")
-        if self.dangling not in DANGLING_POLICIES:
-            raise FitrankInputError(f"dangling policy must be one of {DANGLING_POLICIES}, got '{self.dangling}'")
+        check_walk_settings(self.damping, self.dangling)
         v = self.graph.teleport if self.teleport is None else self.teleport
         object.__setattr__(self, "teleport", check_teleport(v, self.graph.n))
 
