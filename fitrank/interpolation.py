@@ -7,9 +7,8 @@ normalisation as an exact constraint,
 
 Forming (M(theta) U)_I needs only the in-edges of I (and, without a
 closed-form out-weight, the out-edges of their sources): the *local subgraph*,
-extracted once offline. The constraint is eliminated with a fixed null-space
-basis (c = c_p + N y, since 1^T U does not depend on theta) and the remaining
-problem is solved by QR, which JAX differentiates safely (an SVD-based
+extracted once offline. The small constrained problem is solved through its
+equilibrated KKT system by LU, which JAX differentiates safely (an SVD-based
 least-squares solve has fragile gradients at repeated singular values).
 
 Rows are picked by greedy pivoted QR on the rows of Z = [M(theta_1) U, ...,
@@ -25,9 +24,7 @@ References:
   Sorensen, "Nonlinear model reduction via discrete empirical
   interpolation", SIAM J. Sci. Comput. 32(5), 2010 (DEIM); Drmac & Gugercin,
   "A new selection operator for the discrete empirical interpolation method",
-  SIAM J. Sci. Comput. 38(2), 2016 (pivoted-QR selection); Golub & Van Loan,
-  "Matrix Computations", 4th ed., sec. 6.2 (null-space method for
-  equality-constrained least squares).
+  SIAM J. Sci. Comput. 38(2), 2016 (pivoted-QR selection).
 """
 
 from __future__ import annotations
@@ -158,19 +155,6 @@ def in_edges_of(problem: PageRankProblem, rows: np.ndarray) -> tuple[np.ndarray,
     return starts + offsets, np.repeat(np.arange(rows.size), counts)
 
 
-def constraint_nullspace(sums: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """A particular solution and an orthonormal null-space basis of sums^T c = 1.
-
-    Args:
-      sums: (k,) the vector 1^T U.
-
-    Returns:
-      (c_p (k,), N (k, k - 1)) with sums @ c_p = 1 and sums @ N = 0.
-    """
-    q, _ = np.linalg.qr(sums[:, None], mode="complete")
-    return sums / (sums @ sums), np.ascontiguousarray(q[:, 1:])
-
-
 def interpolation_arrays(problem: PageRankProblem, vectors: np.ndarray, rows: np.ndarray) -> tuple[dict, int]:
     """Offline arrays of the interpolation solve at ``rows``.
 
@@ -184,12 +168,10 @@ def interpolation_arrays(problem: PageRankProblem, vectors: np.ndarray, rows: np
       reads, and how many edges of the graph it holds.
     """
     graph, weighting = problem.graph, problem.weighting
-    c_part, null = constraint_nullspace(vectors.sum(axis=0))
     arrays = {
         "basis_rows": vectors[rows],
         "teleport_rows": problem.teleport[rows],
-        "c_part": c_part,
-        "null": null,
+        "sums": vectors.sum(axis=0),
     }
     if weighting.affine:
         from fitrank.galerkin import affine_operator_terms
@@ -235,10 +217,46 @@ def interpolation_coefficients(theta, arrays: dict, *, problem_static: tuple):
         else:
             walk = walk + (arrays["leak_rows"] @ leak)[:, None] * basis_rows
         rows_op = basis_rows - alpha * walk
-    rhs = (1.0 - alpha) * arrays["teleport_rows"] - rows_op @ arrays["c_part"]
-    q, r = jnp.linalg.qr(rows_op @ arrays["null"], mode="reduced")
-    y = jax.scipy.linalg.solve_triangular(r, q.T @ rhs, lower=False)
-    return arrays["c_part"] + arrays["null"] @ y
+    return constrained_least_squares(rows_op, (1.0 - alpha) * arrays["teleport_rows"], arrays["sums"])
+
+
+def constrained_least_squares(matrix, rhs, sums):
+    """argmin_c ||matrix c - rhs||_2 subject to sums . c = 1, in JAX.
+
+    Solves the equilibrated KKT system of the normal equations,
+
+        [[D B^T B D, s D u], [s u^T D, 0]] [D^-1 c; mu / s] = [D B^T f; s],
+
+    with D scaling the columns of B = ``matrix`` to unit norm and s the
+    constraint row, by one LU factorisation of size k + 1 (r k^2 + k^3 / 3
+    flops, against 2 r k^2 for a QR of the r x k matrix). Squaring the
+    condition number is harmless here: the columns of M(theta) U are close to
+    orthonormal (||M|| <= 1 + alpha, ||M^-1|| <= 1 / (1 - alpha)), and the
+    equilibration removes the column scales; jnp.linalg.solve is safe to
+    differentiate.
+
+    Args:
+      matrix: (r, k) B.
+      rhs: (r,) f.
+      sums: (k,) u.
+
+    Returns:
+      (k,) c.
+
+    References:
+      Golub & Van Loan, "Matrix Computations", 4th ed., sec. 6.2.1 (the KKT
+      system of equality-constrained least squares) and sec. 3.5.2
+      (equilibration).
+    """
+    scale = 1.0 / jnp.linalg.norm(matrix, axis=0)
+    scaled = matrix * scale
+    u = sums * scale
+    s = 1.0 / jnp.linalg.norm(u)
+    k = u.shape[0]
+    kkt = jnp.zeros((k + 1, k + 1), dtype=matrix.dtype)
+    kkt = kkt.at[:k, :k].set(scaled.T @ scaled).at[:k, k].set(s * u).at[k, :k].set(s * u)
+    solution = jnp.linalg.solve(kkt, jnp.concatenate([scaled.T @ rhs, s[None]]))
+    return solution[:k] * scale
 
 
 def choose_rows(problem: PageRankProblem, vectors: np.ndarray, count: int, *, probes: int | None = None,

@@ -324,21 +324,19 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
     return table
 
 
-# Label-like columns are read dictionary-encoded: the readers then hash each cell once while
-# parsing, and everything after works on the few distinct values (see _factorise).
-_LABELS = pa.dictionary(pa.int32(), pa.string())
-
-
 def _read_csv(file: Path, text_columns: tuple[str, ...], use_threads: bool = True) -> pa.Table:
+    # Plain strings, not dictionary columns: the CSV reader builds one dictionary per block,
+    # and merging tens of large ones costs more than encoding the column once (_factorise).
     return pacsv.read_csv(
         file,
         read_options=pacsv.ReadOptions(use_threads=use_threads),
-        convert_options=pacsv.ConvertOptions(column_types=dict.fromkeys(text_columns, _LABELS)),
+        convert_options=pacsv.ConvertOptions(column_types=dict.fromkeys(text_columns, pa.string())),
     )
 
 
 def _read_parquet(file: Path, text_columns: tuple[str, ...]) -> pa.Table:
-    # read_dictionary applies to text (byte-array) columns only; numeric columns are read as they are.
+    # Parquet stores text dictionary-encoded: reading it so skips building the strings and
+    # hashing them again. read_dictionary touches only text (byte-array) columns.
     return pq.read_table(file, read_dictionary=list(text_columns), memory_map=True)
 
 
@@ -402,7 +400,7 @@ class _Factors:
     """A column as codes into its distinct values.
 
     Attributes:
-      codes: (rows,) int64 position of each cell's value in ``values``; -1 for a null cell.
+      codes: (rows,) integer position of each cell's value in ``values``; -1 for a null cell.
       values: (K,) the distinct non-null values, each used by at least one cell.
       first_row: (K,) int64 0-based row where each value first appears.
       first_null: 0-based row of the first null cell, or None.
@@ -433,27 +431,30 @@ def _factorise(column: pa.ChunkedArray) -> _Factors:
         # One array first: encoding chunk by chunk gives each chunk its own dictionary,
         # and unifying tens of large dictionaries costs several times the encoding itself.
         encoded = pc.dictionary_encode(column.combine_chunks())
-    indices = pc.fill_null(encoded.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
-    # A dictionary read from a file may repeat a value, hold a null or hold a value no cell uses:
-    # encode it once more (it is small) so that the values come out distinct, non-null and used.
+    indices = encoded.indices
+    codes = (pc.fill_null(indices, -1) if indices.null_count else indices).to_numpy(zero_copy_only=False)
+    # A dictionary read from a file may repeat a value, hold a null or hold a value no cell
+    # uses: encode it once more (it is small) so that the values come out distinct and non-null.
     dictionary = pc.dictionary_encode(encoded.dictionary)
-    remap = pc.fill_null(dictionary.indices, -1).to_numpy(zero_copy_only=False).astype(np.int64)
-    codes = np.append(remap, -1)[indices]  # index -1 (a null cell) maps to the appended -1
-    rows = codes.shape[0]
+    values = dictionary.dictionary
+    remap = pc.fill_null(dictionary.indices, -1).to_numpy(zero_copy_only=False)
+    if not np.array_equal(remap, np.arange(remap.shape[0])):
+        codes = np.append(remap, -1).astype(codes.dtype)[codes]  # code -1 (a null cell) picks the appended -1
     null = codes < 0
     first_null = int(null.argmax()) if null.any() else None
+    rows = codes.shape[0]
+    first_row = np.full(len(values), rows, dtype=np.int64)
     cells = np.arange(rows)
-    first_row = np.full(len(dictionary.dictionary), rows, dtype=np.int64)
     if first_null is None:
         np.minimum.at(first_row, codes, cells)
     else:
         np.minimum.at(first_row, codes[~null], cells[~null])
     used = first_row < rows
-    if used.all():
-        return _Factors(codes, dictionary.dictionary, first_row, first_null)
-    position = np.cumsum(used) - 1
-    codes = np.where(null, -1, position[codes])
-    return _Factors(codes, dictionary.dictionary.filter(pa.array(used)), first_row[used], first_null)
+    if not used.all():  # values no cell uses (unused dictionary entries) must not become nodes
+        position = (np.cumsum(used) - 1).astype(codes.dtype)
+        codes = np.where(null, codes, position[codes])
+        values, first_row = values.filter(pa.array(used)), first_row[used]
+    return _Factors(codes, values, first_row, first_null)
 
 
 def _raise_at(path: str | Path, row: int | None, problem: str, column: str | None = None) -> None:
