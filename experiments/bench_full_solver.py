@@ -1,8 +1,7 @@
 """Benchmark of the full PageRank solve: fitrank against networkx, measured side by side.
 
-All in one run, on one graph written by ``fitrank generate`` (run in a child
-process, so that this process starts the fitrank measurement with JAX cold),
-"scale" weighting at theta0 (the base-weighted walk), uniform teleport:
+All in one run, on one graph written by ``fitrank generate`` (in a child
+process), "scale" weighting at theta0 (the base-weighted walk), uniform teleport:
 
 1. End to end, edge table file in -> PageRank vector out, damping 0.85:
    fitrank: ``fitrank.tables.read_edges`` -> ``make_weighting`` ->
@@ -12,6 +11,12 @@ process, so that this process starts the fitrank measurement with JAX cold),
    needs -> ``networkx.from_pandas_edgelist`` -> ``networkx.pagerank`` (its
    scipy back end). Both stop on the same test ||x_k+1 - x_k||_1 <= tol (1 - alpha)
    (networkx compares that change with n * its tol, so it gets tol (1 - alpha) / n).
+   Every run is a fresh child process in the same state: this script's imports
+   done (numpy, scipy, pandas, pyarrow, networkx, JAX, fitrank), nothing run yet.
+   So fitrank's time includes its first JAX compile, as a user's first call
+   would; process start and imports are in neither total (printed apart).
+   Runs alternate fitrank / networkx so that changes in machine load hit both;
+   the medians over runs are compared.
 2. Seconds per fitrank power iteration divided by one bare scipy CSR mat-vec
    with the same matrix, each timed over a whole solve's worth of iterations
    (medians of repeats, interleaved so that machine load hits both alike).
@@ -23,10 +28,13 @@ process, so that this process starts the fitrank measurement with JAX cold),
 
 Where a target is missed, the run profiles the cause and measures a prototype
 of the fix beside it (``lean_power``, ``adaptive_auto``, the cost of build_graph's sort).
+The machine load (1-minute load average) is printed before and after the
+end-to-end runs: on a shared machine, compare only numbers taken at similar load.
 
 Usage:
   python experiments/bench_full_solver.py            # 100k nodes, ~1M edges, about 2 minutes
   python experiments/bench_full_solver.py --quick    # 20k nodes, ~200k edges, under a minute
+  python experiments/bench_full_solver.py --scale 10 --end-to-end-only   # 1M nodes, ~10M edges, one run each
 
 The last line printed is one JSON object with the measured numbers.
 """
@@ -76,8 +84,12 @@ def write_edge_table(nodes: int, seed: int, folder: Path, file_format: str) -> P
 # ----------------------------------------------------------------------------- end to end
 
 
-def run_fitrank(path: Path, damping: float, tol: float) -> tuple[np.ndarray, object, dict]:
-    """Edge table -> x with fitrank: (x (n,), graph, seconds per phase)."""
+def run_fitrank(path: Path, damping: float, tol: float) -> tuple[np.ndarray, dict]:
+    """Edge table -> x with fitrank: (x (n,) in the graph's node order, seconds per phase).
+
+    ``assemble`` includes the first JAX compile of the weighting's transition;
+    ``assemble_again`` (not part of the total) is the same step repeated, compiled.
+    """
     phases = {}
     start = time.perf_counter()
     graph = read_edges(path)
@@ -91,7 +103,10 @@ def run_fitrank(path: Path, damping: float, tol: float) -> tuple[np.ndarray, obj
     phases["solve"] = time.perf_counter() - mark
     phases["total"] = time.perf_counter() - start
     phases["iterations"] = result.report.iterations
-    return result.x, graph, phases
+    mark = time.perf_counter()
+    walk_operator(graph, make_weighting("scale", graph), weighting.theta0, damping=damping)
+    phases["assemble_again"] = time.perf_counter() - mark
+    return result.x, phases
 
 
 def run_networkx(path: Path, damping: float, tol: float) -> tuple[dict, dict]:
@@ -111,6 +126,51 @@ def run_networkx(path: Path, damping: float, tol: float) -> tuple[dict, dict]:
     phases["solve"] = time.perf_counter() - mark
     phases["total"] = time.perf_counter() - start
     return ranks, phases
+
+
+def child_run(side: str, path: Path, damping: float, tol: float, vector_out: Path | None) -> dict:
+    """One timed end-to-end run in this (fresh) process; the vector is saved after the clock stops."""
+    if side == "fitrank":
+        x, phases = run_fitrank(path, damping, tol)
+        if vector_out is not None:
+            np.save(vector_out, x)
+    else:
+        ranks, phases = run_networkx(path, damping, tol)
+        if vector_out is not None:
+            pd.DataFrame({"node": list(ranks), "rank": list(ranks.values())}).to_parquet(vector_out)
+    return phases
+
+
+def _run_child(side: str, path: Path, damping: float, tol: float, vector_out: Path | None) -> dict:
+    command = [sys.executable, str(Path(__file__).resolve()), "--child", side, "--table", str(path),
+               "--damping", repr(damping), "--tol", repr(tol)]
+    if vector_out is not None:
+        command += ["--vector-out", str(vector_out)]
+    start = time.perf_counter()
+    done = subprocess.run(command, capture_output=True, text=True)
+    if done.returncode != 0:
+        raise RuntimeError(f"the {side} run failed:\n{done.stderr}")
+    phases = json.loads(done.stdout.strip().splitlines()[-1])
+    phases["outside_total"] = time.perf_counter() - start - phases["total"]  # process start, imports, saving x
+    return phases
+
+
+def end_to_end(path: Path, damping: float, tol: float, runs: int, folder: Path) -> dict:
+    """``runs`` fresh-process runs of each side, alternating; medians of every phase and the two vectors."""
+    records = {"fitrank": [], "networkx": []}
+    for run in range(runs):
+        for side in records:
+            out = folder / f"{side}-x.{'npy' if side == 'fitrank' else 'parquet'}" if run == 0 else None
+            records[side].append(_run_child(side, path, damping, tol, out))
+    medians = {side: {key: statistics.median(r[key] for r in rs) for key in rs[0]} for side, rs in records.items()}
+    return {
+        "fitrank": medians["fitrank"],
+        "networkx": medians["networkx"],
+        "fitrank_runs": [r["total"] for r in records["fitrank"]],
+        "networkx_runs": [r["total"] for r in records["networkx"]],
+        "x": np.load(folder / "fitrank-x.npy"),
+        "ranks": pd.read_parquet(folder / "networkx-x.parquet"),
+    }
 
 
 def read_profile(path: Path, graph) -> dict:
@@ -304,43 +364,77 @@ def _auto_targets(counts: dict) -> dict:
     }
 
 
+def _load() -> float:
+    return round(os.getloadavg()[0], 2)
+
+
 def main(argv: list[str] | None = None) -> dict:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="20k nodes (~200k edges), under a minute")
-    parser.add_argument("--nodes", type=int, default=None, help="nodes of the generated graph (default 100000)")
+    parser.add_argument("--scale", type=float, default=1.0,
+                        help="nodes = 100000 x scale (~10 edges per node); 10 gives ~10M edges")
+    parser.add_argument("--nodes", type=int, default=None, help="nodes of the generated graph (overrides --scale)")
     parser.add_argument("--seed", type=int, default=1)
     parser.add_argument("--format", choices=("parquet", "csv"), default="parquet")
     parser.add_argument("--tol", type=float, default=1e-8, help="certified L1 error of both solvers")
+    parser.add_argument("--runs", type=int, default=None,
+                        help="end-to-end runs of each side (default 3, 1 above 200k nodes)")
     parser.add_argument("--repeats", type=int, default=7, help="repeats of the per-iteration timings")
+    parser.add_argument("--end-to-end-only", action="store_true",
+                        help="skip parts 2 and 3 (per-iteration cost, mat-vec counts); their JSON fields are null")
+    parser.add_argument("--child", choices=("fitrank", "networkx"), help=argparse.SUPPRESS)
+    parser.add_argument("--table", type=Path, help=argparse.SUPPRESS)
+    parser.add_argument("--damping", type=float, default=0.85, help=argparse.SUPPRESS)
+    parser.add_argument("--vector-out", type=Path, default=None, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
-    nodes = args.nodes or (20_000 if args.quick else 100_000)
-    damping = 0.85
+    if args.child:
+        phases = child_run(args.child, args.table, args.damping, args.tol, args.vector_out)
+        print(json.dumps(phases))
+        return phases
+    nodes = args.nodes or (20_000 if args.quick else round(100_000 * args.scale))
+    runs = args.runs or (3 if nodes <= 200_000 else 1)
+    damping = args.damping
+    print(f"machine: {os.cpu_count()} cores, OPENBLAS_NUM_THREADS={os.environ.get('OPENBLAS_NUM_THREADS', 'unset')}")
 
     with tempfile.TemporaryDirectory(prefix="fitrank-bench-") as tmp:
         path = write_edge_table(nodes, args.seed, Path(tmp), args.format)
-        x, graph, fr = run_fitrank(path, damping, args.tol)
-        ranks, nxp = run_networkx(path, damping, args.tol)
+        load_start = _load()
+        e2e = end_to_end(path, damping, args.tol, runs, Path(tmp))
+        load_end = _load()
+        fr, nxp = e2e["fitrank"], e2e["networkx"]
         speedup = nxp["total"] / fr["total"]
+        graph = read_edges(path)
         profile = read_profile(path, graph) if speedup < TARGET_SPEEDUP else None
 
-    x_nx = np.array([ranks[node] for node in graph.node_ids])
+    x = e2e["x"]
+    x_nx = e2e["ranks"].set_index("node")["rank"].reindex(pd.Index(graph.node_ids)).to_numpy()
     l1_diff = float(np.abs(x - x_nx).sum())
-    weighting = make_weighting("scale", graph)
-    op = walk_operator(graph, weighting, weighting.theta0, damping=damping)
-    timing = per_iteration(op, args.tol, args.repeats)
-    counts = matvec_counts(graph, args.tol, adaptive=True)
-    sink_counts = matvec_counts(with_rank_sinks(graph), args.tol, adaptive=True)
+    timing, counts, sink_counts = None, None, None
+    if not args.end_to_end_only:
+        weighting = make_weighting("scale", graph)
+        op = walk_operator(graph, weighting, weighting.theta0, damping=damping)
+        timing = per_iteration(op, args.tol, args.repeats)
+        counts = matvec_counts(graph, args.tol, adaptive=True)
+        sink_counts = matvec_counts(with_rank_sinks(graph), args.tol, adaptive=True)
 
     print(f"graph: {graph.n} nodes, {graph.num_edges} edges ({args.format}), {graph.num_relations} relations, "
           f"{int(np.sum(graph.out_degree() == 0))} dangling; damping {damping}, tol {args.tol:g} (certified L1)")
     print()
-    print(f"{'end to end (s)':<28}{'fitrank':>10}{'networkx':>10}")
+    print(f"end to end, median of {runs} fresh-process run(s) per side; load average {load_start} before, "
+          f"{load_end} after")
+    print(f"{'  seconds':<28}{'fitrank':>10}{'networkx':>10}")
     print(f"{'  read table':<28}{fr['read']:>10.3f}{nxp['read']:>10.3f}")
     print(f"{'  build graph / operator':<28}{fr['assemble']:>10.3f}{nxp['build']:>10.3f}")
     print(f"{'  solve':<28}{fr['solve']:>10.3f}{nxp['solve']:>10.3f}")
     print(f"{'  total':<28}{fr['total']:>10.3f}{nxp['total']:>10.3f}")
+    print(f"  runs: fitrank {', '.join(f'{t:.3f}' for t in e2e['fitrank_runs'])}; "
+          f"networkx {', '.join(f'{t:.3f}' for t in e2e['networkx_runs'])}")
+    print(f"  fitrank's total includes its first JAX compile: building the operator again takes "
+          f"{fr['assemble_again']:.3f} s instead of {fr['assemble']:.3f} s")
+    print(f"  not in the totals: process start and imports (and saving the vector), "
+          f"{fr['outside_total']:.2f} s fitrank, {nxp['outside_total']:.2f} s networkx")
     print(f"speedup {speedup:.1f}x (target >= {TARGET_SPEEDUP:.0f}x); L1 difference {l1_diff:.2e}; "
-          f"{fr['iterations']} fitrank mat-vecs, {fr['solve'] / fr['iterations'] * 1e3:.2f} ms each in this solve")
+          f"{fr['iterations']:.0f} fitrank mat-vecs, {fr['solve'] / fr['iterations'] * 1e3:.2f} ms each in this solve")
     if profile is not None:
         print("speedup target missed; read_edges, cumulative seconds of its steps (nested steps count twice):")
         for seconds, name in profile["top_own_seconds"]:
@@ -348,44 +442,61 @@ def main(argv: list[str] | None = None) -> dict:
         print(f"    build_graph on edges already in order: {profile['build_graph_on_sorted_s']:.3f} s "
               f"(sorting them again with np.lexsort: {profile['lexsort_s']:.3f} s; checking the order: "
               f"{profile['sorted_check_s']:.3f} s)")
-    print()
-    print(f"one bare CSR mat-vec            {timing['spmv_s'] * 1e3:8.3f} ms")
-    print(f"one fitrank power iteration     {timing['iteration_s'] * 1e3:8.3f} ms = {timing['iter_over_spmv']:.2f} "
-          f"mat-vecs (target <= {TARGET_ITER_OVER_SPMV})")
-    print(f"one iteration of the end-to-end solve above = "
-          f"{fr['solve'] / fr['iterations'] / timing['spmv_s']:.2f} mat-vecs (first solve in this process)")
-    print(f"one lean prototype iteration    {timing['lean_iteration_s'] * 1e3:8.3f} ms = "
-          f"{timing['lean_iter_over_spmv']:.2f} mat-vecs (L1 to fitrank's x {timing['lean_l1_to_fitrank']:.1e})")
-    end_to_end_ratio = fr["solve"] / fr["iterations"] / timing["spmv_s"]
-    if max(timing["iter_over_spmv"], end_to_end_ratio) > TARGET_ITER_OVER_SPMV:
-        print("per-iteration target missed (in the median or in the first solve); one fitrank power iteration "
-              "piece by piece (ms):")
-        for name, seconds in iteration_breakdown(op).items():
-            print(f"    {name:<44}{seconds * 1e3:8.3f}")
-    print()
-    _print_counts("mat-vecs, generated graph:", counts)
-    _print_counts("mat-vecs, same graph with its dangling nodes paired into 2-cycles (rank sinks):", sink_counts)
+    end_to_end_ratio = None
+    if timing is not None:
+        print()
+        print(f"one bare CSR mat-vec            {timing['spmv_s'] * 1e3:8.3f} ms")
+        print(f"one fitrank power iteration     {timing['iteration_s'] * 1e3:8.3f} ms = "
+              f"{timing['iter_over_spmv']:.2f} mat-vecs (target <= {TARGET_ITER_OVER_SPMV})")
+        end_to_end_ratio = fr["solve"] / fr["iterations"] / timing["spmv_s"]
+        print(f"one iteration of the end-to-end solve above = {end_to_end_ratio:.2f} mat-vecs "
+              f"(first solve in a fresh process)")
+        print(f"one lean prototype iteration    {timing['lean_iteration_s'] * 1e3:8.3f} ms = "
+              f"{timing['lean_iter_over_spmv']:.2f} mat-vecs (L1 to fitrank's x {timing['lean_l1_to_fitrank']:.1e})")
+        if max(timing["iter_over_spmv"], end_to_end_ratio) > TARGET_ITER_OVER_SPMV:
+            print("per-iteration target missed (in the median or in the first solve); one fitrank power iteration "
+                  "piece by piece (ms):")
+            for name, seconds in iteration_breakdown(op).items():
+                print(f"    {name:<44}{seconds * 1e3:8.3f}")
+        print()
+        _print_counts("mat-vecs, generated graph:", counts)
+        _print_counts("mat-vecs, same graph with its dangling nodes paired into 2-cycles (rank sinks):", sink_counts)
+
+    def rounded(value, digits=3):
+        return None if value is None else round(value, digits)
 
     summary = {
         "edges": graph.num_edges,
         "nodes": graph.n,
+        "format": args.format,
         "tol": args.tol,
-        "load_avg_1min": round(os.getloadavg()[0], 2),
+        "runs": runs,
+        "cpu_count": os.cpu_count(),
+        "load_avg_1min": load_end,
+        "load_avg_before_end_to_end": load_start,
         "fitrank_s": round(fr["total"], 4),
         "networkx_s": round(nxp["total"], 4),
         "speedup": round(speedup, 2),
+        "fitrank_runs_s": [round(t, 4) for t in e2e["fitrank_runs"]],
+        "networkx_runs_s": [round(t, 4) for t in e2e["networkx_runs"]],
+        "fitrank_phases_s": {k: round(fr[k], 4) for k in ("read", "assemble", "solve", "assemble_again")},
+        "networkx_phases_s": {k: round(nxp[k], 4) for k in ("read", "build", "solve")},
+        "jax_compile_included": True,
+        "imports_included": False,
         "l1_diff": l1_diff,
-        "iter_over_spmv": round(timing["iter_over_spmv"], 3),
-        "end_to_end_iter_over_spmv": round(end_to_end_ratio, 3),
-        "lean_iter_over_spmv": round(timing["lean_iter_over_spmv"], 3),
-        "matvecs": {name: entry["matvecs"] for name, entry in counts.items()},
-        "auto_uses": {name: entry["used"] for name, entry in counts.items() if name.startswith("auto")},
-        "matvecs_rank_sinks": {name: entry["matvecs"] for name, entry in sink_counts.items()},
+        "iter_over_spmv": rounded(timing and timing["iter_over_spmv"]),
+        "end_to_end_iter_over_spmv": rounded(end_to_end_ratio),
+        "lean_iter_over_spmv": rounded(timing and timing["lean_iter_over_spmv"]),
+        "matvecs": counts and {name: entry["matvecs"] for name, entry in counts.items()},
+        "auto_uses": counts and {name: entry["used"] for name, entry in counts.items() if name.startswith("auto")},
+        "matvecs_rank_sinks": sink_counts and {name: entry["matvecs"] for name, entry in sink_counts.items()},
         "targets_met": {
             "speedup": speedup >= TARGET_SPEEDUP,
-            "iter_over_spmv": timing["iter_over_spmv"] <= TARGET_ITER_OVER_SPMV,
-            **_auto_targets(counts),
-            **{f"rank_sinks_{k}": v for k, v in _auto_targets(sink_counts).items()},
+            **({} if timing is None else {
+                "iter_over_spmv": timing["iter_over_spmv"] <= TARGET_ITER_OVER_SPMV,
+                **_auto_targets(counts),
+                **{f"rank_sinks_{k}": v for k, v in _auto_targets(sink_counts).items()},
+            }),
         },
     }
     print(json.dumps(summary))

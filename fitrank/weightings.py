@@ -198,7 +198,7 @@ def affine_terms(graph: Graph, weighting: Weighting) -> list[np.ndarray]:
 # --------------------------------------------------------------------------- scale
 
 
-def relation_scale(graph: Graph, bound: float = 2.5) -> Weighting:
+def relation_scale(graph: Graph, bound: float = 1.5) -> Weighting:
     """Relation scale: a_e = b_e exp(theta_rel(e)), p_e = a_e / d_src(e).
 
     The out-weight d_j = sum_t exp(theta_t) S[j, t] has a closed form from the
@@ -208,7 +208,12 @@ def relation_scale(graph: Graph, bound: float = 2.5) -> Weighting:
 
     Args:
       graph: the graph.
-      bound: sampling box is [-bound, bound]^T (a weight ratio of e^(2 bound)).
+      bound: sampling box is [-bound, bound]^T: relation weights within a factor
+        e^(2 bound) (about 20 by default) of each other. As for any box, a wider
+        one needs a larger basis for the same accuracy (measured on a generated
+        20k-node graph with 4 relations, k = 100: half-width 2.5 gives top-100
+        Kendall tau 0.996 even for the best approximation in the basis, 1.5
+        gives 0.999); training may leave the box and enrichment follows it.
     """
     out_weight = graph.relation_out_weight()
 
