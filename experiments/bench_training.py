@@ -22,7 +22,6 @@ from __future__ import annotations
 import argparse
 import json
 import os
-import sys
 import tempfile
 import time
 from pathlib import Path
@@ -33,7 +32,7 @@ import numpy as np
 
 from _timing import median_seconds  # noqa: E402  (also puts the checkout on sys.path)
 
-from fitrank.fit import fit  # noqa: E402
+from fitrank.pipeline import fit  # noqa: E402
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
 from fitrank.objective import full_objective, reduced_objective  # noqa: E402
 

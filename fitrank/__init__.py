@@ -20,6 +20,16 @@ _PUBLIC = {
     "FitrankInputError": "fitrank.errors",
     "DataError": "fitrank.errors",
     "ConfigError": "fitrank.errors",
+    "fit": "fitrank.pipeline",
+    "summary_lines": "fitrank.pipeline",
+    "FitResult": "fitrank.pipeline",
+    "load_config": "fitrank.config",
+    "make_weighting": "fitrank.weightings",
+    "pagerank": "fitrank.pagerank",
+    "PageRankProblem": "fitrank.pagerank",
+    "ReductionSettings": "fitrank.reduced",
+    "build_reduced_model": "fitrank.reduced",
+    "load_reduced_model": "fitrank.reduced",
 }
 
 __all__ = ["__version__", *_PUBLIC]

@@ -73,7 +73,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
     import time
 
     from fitrank.config import load_config
-    from fitrank.fit import model_path, prepare, reduction_settings
+    from fitrank.pipeline import model_path, prepare, reduction_settings
     from fitrank.reduced import build_reduced_model
     from fitrank.snapshots import local_executor
 
@@ -104,7 +104,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
 
 
 def _cmd_fit(args: argparse.Namespace) -> int:
-    from fitrank.fit import fit, summary_lines
+    from fitrank.pipeline import fit, summary_lines
 
     log = (lambda message: None) if args.quiet else (lambda message: print(message, file=sys.stderr))
     result = fit(args.config, overrides=args.overrides, out=args.out, progress=not args.quiet, log=log)

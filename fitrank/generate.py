@@ -42,9 +42,6 @@ References:
 from __future__ import annotations
 
 import json
-import os
-import shutil
-import tempfile
 import time
 from dataclasses import asdict, dataclass, fields
 from pathlib import Path
@@ -56,6 +53,7 @@ import pyarrow.csv as pa_csv
 import pyarrow.parquet as pq
 from scipy.special import ndtr
 
+from fitrank.atomic import staged_folder
 from fitrank.errors import FitrankInputError
 from fitrank.graph import SPLITS, Graph, build_graph
 from fitrank.pagerank import pagerank
@@ -731,26 +729,13 @@ def write_dataset(out_dir, edges: pd.DataFrame, pairs: pd.DataFrame, truth: dict
         raise FitrankInputError(f"{out_dir} exists and is not empty; choose a new folder or pass --force")
     names = {"edges": f"edges.{file_format}", "pairs": f"pairs.{file_format}", "truth": TRUTH_FILE}
     try:
-        out_dir.parent.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.tmp-", dir=out_dir.parent))
-    except OSError as err:
-        raise FitrankInputError(f"cannot create a folder in {out_dir.parent}: {err.strerror}") from None
-    try:
-        _write_table(edges, staging / names["edges"], file_format)
-        _write_table(pairs, staging / names["pairs"], file_format)
-        record = {**truth, "files": {"edges": names["edges"], "pairs": names["pairs"]}}
-        (staging / names["truth"]).write_text(json.dumps(record, indent=2) + "\n")
-        os.chmod(staging, 0o755)  # mkdtemp makes it private
-        old = None
-        if out_dir.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old-", dir=out_dir.parent))
-            os.rename(out_dir, old / "previous")
-        os.rename(staging, out_dir)
-        if old is not None:
-            shutil.rmtree(old)
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
+        with staged_folder(out_dir) as staging:
+            _write_table(edges, staging / names["edges"], file_format)
+            _write_table(pairs, staging / names["pairs"], file_format)
+            record = {**truth, "files": {"edges": names["edges"], "pairs": names["pairs"]}}
+            (staging / names["truth"]).write_text(json.dumps(record, indent=2) + "\n")
+    except PermissionError as err:
+        raise FitrankInputError(f"cannot write in {out_dir.parent}: {err.strerror}") from None
     return {key: out_dir / name for key, name in names.items()}
 
 

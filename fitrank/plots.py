@@ -8,11 +8,10 @@ place, so a reader never sees half a PNG.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
+from fitrank.atomic import staged_file
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
 
@@ -31,15 +30,8 @@ def _figure(width: float = 7.0, height: float = 4.2) -> Figure:
 
 def _save(figure: Figure, path: str | Path) -> Path:
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    handle, temp = tempfile.mkstemp(prefix=f".{path.stem}-", suffix=".png", dir=path.parent)
-    try:
-        with os.fdopen(handle, "wb") as out:
-            figure.savefig(out, format="png")
-        os.replace(temp, path)
-    except BaseException:
-        Path(temp).unlink(missing_ok=True)
-        raise
+    with staged_file(path, suffix=".png") as temp:
+        figure.savefig(temp, format="png")
     return path
 
 

@@ -13,7 +13,6 @@ from __future__ import annotations
 import functools
 import json
 import os
-import tempfile
 import time
 from concurrent.futures import Executor
 from dataclasses import asdict, dataclass, field, replace
@@ -23,6 +22,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from fitrank.atomic import staged_file
 from fitrank.basis import PodBasis, extend_basis, pod_basis
 from fitrank.errors import FitrankInputError, ModelMismatchError
 from fitrank.galerkin import galerkin_arrays, galerkin_coefficients
@@ -175,18 +175,10 @@ class ReducedModel:
             "info": self.info,
             "param_names": list(self.problem.weighting.param_names),
         }
-        folder = os.path.dirname(os.path.abspath(path))
-        os.makedirs(folder, exist_ok=True)
-        handle, tmp = tempfile.mkstemp(prefix=".model-", suffix=".npz", dir=folder)
-        os.close(handle)
-        try:
-            np.savez(tmp, meta=np.array(json.dumps(meta)), vectors=self.basis.vectors,
+        with staged_file(path, suffix=".npz") as temp:
+            np.savez(temp, meta=np.array(json.dumps(meta)), vectors=self.basis.vectors,
                      singular_values=self.basis.singular_values, lost_energy=np.array(self.basis.lost_energy),
                      rows=self.rows, thetas=self.thetas)
-            os.replace(tmp, path)
-        finally:
-            if os.path.exists(tmp):
-                os.remove(tmp)
         return path
 
 

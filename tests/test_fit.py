@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from fitrank.cli import main
-from fitrank.fit import fit
+from fitrank.pipeline import fit
 from fitrank.metrics import pair_accuracy
 from fitrank.pagerank import PageRankProblem
 

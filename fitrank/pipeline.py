@@ -16,9 +16,6 @@
 from __future__ import annotations
 
 import json
-import os
-import shutil
-import tempfile
 import time
 from dataclasses import dataclass, field, replace
 from pathlib import Path
@@ -26,6 +23,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from fitrank.atomic import staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
 from fitrank.errors import FitrankInputError
 from fitrank.graph import SPLITS, Dataset
@@ -344,9 +342,7 @@ def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
     place at the end, so a failed run leaves any earlier run folder intact.
     """
     run_dir = Path(run_dir)
-    run_dir.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{run_dir.name}.tmp-", dir=run_dir.parent))
-    try:
+    with staged_folder(run_dir) as staging:
         (staging / "config.toml").write_text(effective_config(config), encoding="utf-8")
         (staging / RESULT_FILE).write_text(json.dumps(result.record, indent=2) + "\n", encoding="utf-8")
         result.history.to_csv(staging / "history.csv", index=False)
@@ -362,17 +358,6 @@ def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
             result.model.save(staging / MODEL_FILE)
         if config.output.plots:
             _write_plots(result, staging)
-        os.chmod(staging, 0o755)
-        if run_dir.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{run_dir.name}.old-", dir=run_dir.parent))
-            os.rename(run_dir, old / "previous")
-            os.rename(staging, run_dir)
-            shutil.rmtree(old)
-        else:
-            os.rename(staging, run_dir)
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
     return run_dir
 
 

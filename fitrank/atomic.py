@@ -1,0 +1,55 @@
+"""Atomic output: a file or folder is either complete or not there.
+
+Everything fitrank writes (generated datasets, run folders, models, plots) is
+written under a temporary name beside its destination and renamed into place
+at the end, so a crash or a bad input never leaves a half-written result and
+never destroys an earlier complete one.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+
+@contextlib.contextmanager
+def staged_folder(target: str | Path):
+    """Yield a fresh temporary folder beside ``target``; on success it replaces ``target``.
+
+    On an exception the temporary folder is removed and ``target`` (if it
+    existed) is left exactly as it was.
+    """
+    target = Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
+    try:
+        yield staging
+        os.chmod(staging, 0o755)  # mkdtemp makes it private
+        if target.exists():
+            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+            os.rename(target, old / "previous")
+            os.rename(staging, target)
+            shutil.rmtree(old)
+        else:
+            os.rename(staging, target)
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+
+
+@contextlib.contextmanager
+def staged_file(target: str | Path, suffix: str = ""):
+    """Yield a temporary path beside ``target``; on success it replaces ``target`` (mode 0644)."""
+    target = Path(target)
+    target.parent.mkdir(parents=True, exist_ok=True)
+    handle, temp = tempfile.mkstemp(prefix=f".{target.stem}-", suffix=suffix or target.suffix, dir=target.parent)
+    os.close(handle)
+    try:
+        yield Path(temp)
+        os.chmod(temp, 0o644)  # mkstemp makes it private
+        os.replace(temp, target)
+    finally:
+        Path(temp).unlink(missing_ok=True)
