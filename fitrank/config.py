@@ -108,8 +108,9 @@ class ReductionSection:
                          low=0.0, high=1.0, low_open=True, high_open=True)
     max_rank: int = _key(100, "largest basis size the energy rule may choose", "int", low=1)
     rows: int | None = _key(None, "interpolation rows r (>= k); \"auto\" = 2 k", "int?", low=1)
-    gamma: float = _key(0.25, "cost weight of row choice: score = remaining norm / (1 + gamma * edges needed / "
-                             "mean edges needed); 0 = pure pivoted QR (favours hubs)", "float", low=0.0)
+    gamma: float | None = _key(None, "cost weight of row choice: score = remaining norm / (1 + gamma * edges "
+                                     "needed / mean edges needed); 0 = pure pivoted QR (favours hubs); \"auto\" = "
+                                     "0.25 for mixture and scale, 4 for features", "float?", low=0.0)
     edge_budget: int = _key(0, "most edges the interpolation rows may touch; 0 = no budget", "int", low=0)
     seed: int = _key(0, "seed of the parameter sampling", "int", low=0)
     workers: int = _key(1, "processes for the full solves of the offline stage", "int", low=1)
