@@ -11,12 +11,15 @@ process), "scale" weighting at theta0 (the base-weighted walk), uniform teleport
    needs -> ``networkx.from_pandas_edgelist`` -> ``networkx.pagerank`` (its
    scipy back end). Both stop on the same test ||x_k+1 - x_k||_1 <= tol (1 - alpha)
    (networkx compares that change with n * its tol, so it gets tol (1 - alpha) / n).
+   fitrank reads every column (relations and features are part of its graph);
+   networkx reads the three it uses.
    Every run is a fresh child process in the same state: this script's imports
    done (numpy, scipy, pandas, pyarrow, networkx, JAX, fitrank), nothing run yet.
    So fitrank's time includes its first JAX compile, as a user's first call
    would; process start and imports are in neither total (printed apart).
    Runs alternate fitrank / networkx so that changes in machine load hit both;
-   the medians over runs are compared.
+   the medians over runs are compared. Two prototypes of a cheaper first
+   assembly of the operator run the same way beside them (see ``assemble``).
 2. Seconds per fitrank power iteration divided by one bare scipy CSR mat-vec
    with the same matrix, each timed over a whole solve's worth of iterations
    (medians of repeats, interleaved so that machine load hits both alike).
@@ -34,7 +37,8 @@ end-to-end runs: on a shared machine, compare only numbers taken at similar load
 Usage:
   python experiments/bench_full_solver.py            # 100k nodes, ~1M edges, about 2 minutes
   python experiments/bench_full_solver.py --quick    # 20k nodes, ~200k edges, under a minute
-  python experiments/bench_full_solver.py --scale 10 --end-to-end-only   # 1M nodes, ~10M edges, one run each
+  python experiments/bench_full_solver.py --format csv --end-to-end-only
+  python experiments/bench_full_solver.py --scale 10 --end-to-end-only   # ~10M edges, one run each, ~5 minutes
 
 The last line printed is one JSON object with the measured numbers.
 """
@@ -51,25 +55,23 @@ import subprocess
 import sys
 import tempfile
 import time
-import timeit
 from pathlib import Path
 
+import jax
 import networkx as nx
 import numpy as np
 import pandas as pd
 
-from fitrank.graph import build_graph
-from fitrank.pagerank import solve_operator, walk_operator
-from fitrank.tables import read_edges
-from fitrank.weightings import make_weighting
+from _timing import median_seconds  # noqa: E402  (also puts the checkout on sys.path)
+
+from fitrank.graph import build_graph  # noqa: E402
+from fitrank.pagerank import WalkOperator, check_teleport, solve_operator, walk_operator  # noqa: E402
+from fitrank.tables import read_edges  # noqa: E402
+from fitrank.weightings import make_weighting  # noqa: E402
 
 TARGET_SPEEDUP = 20.0
 TARGET_ITER_OVER_SPMV = 1.5
 MAXITER = 100_000
-
-
-def _median_seconds(fn, repeats: int) -> float:
-    return statistics.median(timeit.repeat(fn, number=1, repeat=repeats))
 
 
 def write_edge_table(nodes: int, seed: int, folder: Path, file_format: str) -> Path:
@@ -84,11 +86,36 @@ def write_edge_table(nodes: int, seed: int, folder: Path, file_format: str) -> P
 # ----------------------------------------------------------------------------- end to end
 
 
-def run_fitrank(path: Path, damping: float, tol: float) -> tuple[np.ndarray, dict]:
+def assemble(graph, weighting, damping: float, how: str = "library") -> WalkOperator:
+    """M(theta0) for the "scale" weighting: fitrank's own ``walk_operator`` or a prototype.
+
+    Prototypes of a cheaper first assembly (not fitrank's code path; measured beside it):
+    "fused_jit" compiles the transition and the leak coefficients as one program
+    (``walk_operator`` compiles the transition and runs the coefficients op by op,
+    which compiles two more small programs); "numpy" evaluates the scale transition
+    p_e = b_e s_rel(e) / sum_t s_t S[src(e), t], s = exp(theta - max theta), in NumPy
+    with no JAX at all (JAX stays for gradients).
+    """
+    if how == "library":
+        return walk_operator(graph, weighting, weighting.theta0, damping=damping)
+    theta, tables = weighting.theta0, weighting.tables
+    if how == "fused_jit":
+        both = jax.jit(lambda th, tb: (weighting.transition(th, tb), weighting.leak_coefficients(th)))
+        p, coefficients = (np.asarray(a, dtype=np.float64) for a in both(theta, tables))
+    else:
+        scale = np.exp(theta - theta.max())
+        p = tables["base"] * scale[tables["rel"]] / (tables["out_weight"] @ scale)[tables["slot"]]
+        coefficients = np.ones(1)
+    leak = weighting.leak_basis @ coefficients
+    return WalkOperator(graph.matrix(p), leak, check_teleport(graph.teleport, graph.n), damping, "teleport", p)
+
+
+def run_fitrank(path: Path, damping: float, tol: float, how: str = "library") -> tuple[np.ndarray, dict]:
     """Edge table -> x with fitrank: (x (n,) in the graph's node order, seconds per phase).
 
-    ``assemble`` includes the first JAX compile of the weighting's transition;
-    ``assemble_again`` (not part of the total) is the same step repeated, compiled.
+    With ``how="library"``, ``assemble`` includes the first JAX compile of the
+    weighting's transition; ``assemble_again`` (not part of the total) is the same
+    step repeated, compiled. Other values of ``how`` swap in a prototype assembly.
     """
     phases = {}
     start = time.perf_counter()
@@ -96,7 +123,7 @@ def run_fitrank(path: Path, damping: float, tol: float) -> tuple[np.ndarray, dic
     phases["read"] = time.perf_counter() - start
     mark = time.perf_counter()
     weighting = make_weighting("scale", graph)
-    op = walk_operator(graph, weighting, weighting.theta0, damping=damping)
+    op = assemble(graph, weighting, damping, how)
     phases["assemble"] = time.perf_counter() - mark
     mark = time.perf_counter()
     result = solve_operator(op, tol=tol, maxiter=MAXITER)
@@ -104,7 +131,7 @@ def run_fitrank(path: Path, damping: float, tol: float) -> tuple[np.ndarray, dic
     phases["total"] = time.perf_counter() - start
     phases["iterations"] = result.report.iterations
     mark = time.perf_counter()
-    walk_operator(graph, make_weighting("scale", graph), weighting.theta0, damping=damping)
+    assemble(graph, make_weighting("scale", graph), damping, how)
     phases["assemble_again"] = time.perf_counter() - mark
     return result.x, phases
 
@@ -128,16 +155,20 @@ def run_networkx(path: Path, damping: float, tol: float) -> tuple[dict, dict]:
     return ranks, phases
 
 
+SIDES = ("fitrank", "networkx")
+PROTOTYPES = ("fitrank+fused_jit", "fitrank+numpy")
+
+
 def child_run(side: str, path: Path, damping: float, tol: float, vector_out: Path | None) -> dict:
     """One timed end-to-end run in this (fresh) process; the vector is saved after the clock stops."""
-    if side == "fitrank":
-        x, phases = run_fitrank(path, damping, tol)
-        if vector_out is not None:
-            np.save(vector_out, x)
-    else:
+    if side == "networkx":
         ranks, phases = run_networkx(path, damping, tol)
         if vector_out is not None:
             pd.DataFrame({"node": list(ranks), "rank": list(ranks.values())}).to_parquet(vector_out)
+        return phases
+    x, phases = run_fitrank(path, damping, tol, how=side.partition("+")[2] or "library")
+    if vector_out is not None:
+        np.save(vector_out, x)
     return phases
 
 
@@ -155,21 +186,24 @@ def _run_child(side: str, path: Path, damping: float, tol: float, vector_out: Pa
     return phases
 
 
-def end_to_end(path: Path, damping: float, tol: float, runs: int, folder: Path) -> dict:
-    """``runs`` fresh-process runs of each side, alternating; medians of every phase and the two vectors."""
-    records = {"fitrank": [], "networkx": []}
+def end_to_end(path: Path, damping: float, tol: float, runs: int, folder: Path, sides: tuple[str, ...]) -> dict:
+    """``runs`` fresh-process runs of each side, alternating.
+
+    Returns:
+      per side the medians of every phase (``medians``) and the run totals
+      (``totals``); from the first run, x (n,) of each fitrank side (``x``) and
+      networkx's ranks (``ranks``, a node/rank frame).
+    """
+    records = {side: [] for side in sides}
+    vectors = {side: folder / f"{side}-x.{'parquet' if side == 'networkx' else 'npy'}" for side in sides}
     for run in range(runs):
-        for side in records:
-            out = folder / f"{side}-x.{'npy' if side == 'fitrank' else 'parquet'}" if run == 0 else None
-            records[side].append(_run_child(side, path, damping, tol, out))
-    medians = {side: {key: statistics.median(r[key] for r in rs) for key in rs[0]} for side, rs in records.items()}
+        for side in sides:
+            records[side].append(_run_child(side, path, damping, tol, vectors[side] if run == 0 else None))
     return {
-        "fitrank": medians["fitrank"],
-        "networkx": medians["networkx"],
-        "fitrank_runs": [r["total"] for r in records["fitrank"]],
-        "networkx_runs": [r["total"] for r in records["networkx"]],
-        "x": np.load(folder / "fitrank-x.npy"),
-        "ranks": pd.read_parquet(folder / "networkx-x.parquet"),
+        "medians": {side: {key: statistics.median(r[key] for r in rs) for key in rs[0]} for side, rs in records.items()},
+        "totals": {side: [r["total"] for r in rs] for side, rs in records.items()},
+        "x": {side: np.load(file) for side, file in vectors.items() if side != "networkx"},
+        "ranks": pd.read_parquet(vectors["networkx"]),
     }
 
 
@@ -187,11 +221,11 @@ def read_profile(path: Path, graph) -> dict:
     src, dst = graph.src, graph.dst  # already in build_graph's (target, source) order
     return {
         "top_own_seconds": top,
-        "build_graph_on_sorted_s": _median_seconds(lambda: build_graph(src, dst, graph.n, base=graph.base,
+        "build_graph_on_sorted_s": median_seconds(lambda: build_graph(src, dst, graph.n, base=graph.base,
                                                                        relation=graph.relation,
                                                                        features=graph.features), 3),
-        "lexsort_s": _median_seconds(lambda: np.lexsort((src, dst)), 3),
-        "sorted_check_s": _median_seconds(lambda: bool(np.all(np.diff(dst * graph.n + src) >= 0)), 3),
+        "lexsort_s": median_seconds(lambda: np.lexsort((src, dst)), 3),
+        "sorted_check_s": median_seconds(lambda: bool(np.all(np.diff(dst * graph.n + src) >= 0)), 3),
     }
 
 
@@ -271,7 +305,7 @@ def iteration_breakdown(op, calls: int = 30, repeats: int = 5) -> dict:
     leaky = np.flatnonzero(op.leak)
 
     def per_call(fn):
-        return _median_seconds(lambda: [fn() for _ in range(calls)], repeats) / calls
+        return median_seconds(lambda: [fn() for _ in range(calls)], repeats) / calls
 
     def spmv_then_dot():
         op.matrix @ z
@@ -382,7 +416,9 @@ def main(argv: list[str] | None = None) -> dict:
     parser.add_argument("--repeats", type=int, default=7, help="repeats of the per-iteration timings")
     parser.add_argument("--end-to-end-only", action="store_true",
                         help="skip parts 2 and 3 (per-iteration cost, mat-vec counts); their JSON fields are null")
-    parser.add_argument("--child", choices=("fitrank", "networkx"), help=argparse.SUPPRESS)
+    parser.add_argument("--no-prototypes", action="store_true",
+                        help="skip the end-to-end runs of the prototype assemblies")
+    parser.add_argument("--child", choices=SIDES + PROTOTYPES, help=argparse.SUPPRESS)
     parser.add_argument("--table", type=Path, help=argparse.SUPPRESS)
     parser.add_argument("--damping", type=float, default=0.85, help=argparse.SUPPRESS)
     parser.add_argument("--vector-out", type=Path, default=None, help=argparse.SUPPRESS)
@@ -399,14 +435,15 @@ def main(argv: list[str] | None = None) -> dict:
     with tempfile.TemporaryDirectory(prefix="fitrank-bench-") as tmp:
         path = write_edge_table(nodes, args.seed, Path(tmp), args.format)
         load_start = _load()
-        e2e = end_to_end(path, damping, args.tol, runs, Path(tmp))
+        sides = SIDES + (() if args.no_prototypes else PROTOTYPES)
+        e2e = end_to_end(path, damping, args.tol, runs, Path(tmp), sides)
         load_end = _load()
-        fr, nxp = e2e["fitrank"], e2e["networkx"]
+        fr, nxp = e2e["medians"]["fitrank"], e2e["medians"]["networkx"]
         speedup = nxp["total"] / fr["total"]
         graph = read_edges(path)
         profile = read_profile(path, graph) if speedup < TARGET_SPEEDUP else None
 
-    x = e2e["x"]
+    x = e2e["x"]["fitrank"]
     x_nx = e2e["ranks"].set_index("node")["rank"].reindex(pd.Index(graph.node_ids)).to_numpy()
     l1_diff = float(np.abs(x - x_nx).sum())
     timing, counts, sink_counts = None, None, None
@@ -427,14 +464,19 @@ def main(argv: list[str] | None = None) -> dict:
     print(f"{'  build graph / operator':<28}{fr['assemble']:>10.3f}{nxp['build']:>10.3f}")
     print(f"{'  solve':<28}{fr['solve']:>10.3f}{nxp['solve']:>10.3f}")
     print(f"{'  total':<28}{fr['total']:>10.3f}{nxp['total']:>10.3f}")
-    print(f"  runs: fitrank {', '.join(f'{t:.3f}' for t in e2e['fitrank_runs'])}; "
-          f"networkx {', '.join(f'{t:.3f}' for t in e2e['networkx_runs'])}")
+    print(f"  runs: fitrank {', '.join(f'{t:.3f}' for t in e2e['totals']['fitrank'])}; "
+          f"networkx {', '.join(f'{t:.3f}' for t in e2e['totals']['networkx'])}")
     print(f"  fitrank's total includes its first JAX compile: building the operator again takes "
           f"{fr['assemble_again']:.3f} s instead of {fr['assemble']:.3f} s")
     print(f"  not in the totals: process start and imports (and saving the vector), "
           f"{fr['outside_total']:.2f} s fitrank, {nxp['outside_total']:.2f} s networkx")
     print(f"speedup {speedup:.1f}x (target >= {TARGET_SPEEDUP:.0f}x); L1 difference {l1_diff:.2e}; "
           f"{fr['iterations']:.0f} fitrank mat-vecs, {fr['solve'] / fr['iterations'] * 1e3:.2f} ms each in this solve")
+    prototypes = {side: e2e["medians"][side] for side in sides if side in PROTOTYPES}
+    for side, med in prototypes.items():
+        print(f"  prototype {side} (not fitrank's code path; see assemble()): build operator {med['assemble']:.3f} s, "
+              f"total {med['total']:.3f} s, speedup {nxp['total'] / med['total']:.1f}x; "
+              f"L1 to fitrank's x {np.abs(e2e['x'][side] - x).sum():.1e}")
     if profile is not None:
         print("speedup target missed; read_edges, cumulative seconds of its steps (nested steps count twice):")
         for seconds, name in profile["top_own_seconds"]:
@@ -477,11 +519,15 @@ def main(argv: list[str] | None = None) -> dict:
         "fitrank_s": round(fr["total"], 4),
         "networkx_s": round(nxp["total"], 4),
         "speedup": round(speedup, 2),
-        "fitrank_runs_s": [round(t, 4) for t in e2e["fitrank_runs"]],
-        "networkx_runs_s": [round(t, 4) for t in e2e["networkx_runs"]],
+        "fitrank_runs_s": [round(t, 4) for t in e2e["totals"]["fitrank"]],
+        "networkx_runs_s": [round(t, 4) for t in e2e["totals"]["networkx"]],
         "fitrank_phases_s": {k: round(fr[k], 4) for k in ("read", "assemble", "solve", "assemble_again")},
         "networkx_phases_s": {k: round(nxp[k], 4) for k in ("read", "build", "solve")},
         "jax_compile_included": True,
+        "prototypes": {side: {"assemble_s": round(med["assemble"], 4), "total_s": round(med["total"], 4),
+                              "speedup": round(nxp["total"] / med["total"], 2),
+                              "l1_to_fitrank": float(np.abs(e2e["x"][side] - x).sum())}
+                       for side, med in prototypes.items()},
         "imports_included": False,
         "l1_diff": l1_diff,
         "iter_over_spmv": rounded(timing and timing["iter_over_spmv"]),

@@ -52,12 +52,18 @@ Policies reported in ``Dataset.notes`` rather than refused:
   both directions is kept both ways and counted.
 
 Everything is vectorised (Arrow and NumPy); no Python loop runs over rows.
+Label-like columns (ids, relations) are hashed once into codes and their few
+distinct values, and checked and converted there; the edge table's ids and its
+other columns are worked on in two threads (``experiments/bench_full_solver.py``
+measures the whole path against networkx).
 """
 
 from __future__ import annotations
 
 import re
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
 from typing import Callable
 
@@ -136,30 +142,27 @@ def read_edges(edges: str | Path, nodes: str | Path | None = None, *, notes: lis
     table = _read_table(edges, text_columns=("source", "target", "relation"))
     _require_columns(table, edges, required=("source", "target"))
     num_rows = table.num_rows
-    id_columns = [_id_factors(table, "source", edges), _id_factors(table, "target", edges)]
-    node_table = None
-    if nodes is not None:
-        node_table = _read_table(nodes, text_columns=("node",))
-        _require_columns(node_table, nodes, required=("node",), allowed=NODE_COLUMNS)
-        id_columns.append(_id_factors(node_table, "node", nodes))
-    # Row by row, source before target, then the node table: cell positions 2r, 2r + 1, 2E + r.
-    positions = [(2, 0), (2, 1), (1, 2 * num_rows)][: len(id_columns)]
-    node_ids, (src, dst, *node_codes), first_position = _number_nodes(id_columns, positions)
-    n = len(node_ids)
+    # Two independent halves run side by side (Arrow and NumPy release the GIL on large
+    # arrays): node ids here, the other columns on a second thread. Errors still surface in
+    # the order of the checks: ids (and the node table) first, then weight, relation, features.
+    with ThreadPoolExecutor(max_workers=1) as pool:
+        other_columns = pool.submit(_edge_columns, table, edges)
+        id_columns = [_id_factors(table, "source", edges), _id_factors(table, "target", edges)]
+        node_table = None
+        if nodes is not None:
+            node_table = _read_table(nodes, text_columns=("node",))
+            _require_columns(node_table, nodes, required=("node",), allowed=NODE_COLUMNS)
+            id_columns.append(_id_factors(node_table, "node", nodes))
+        # Row by row, source before target, then the node table: cell positions 2r, 2r + 1, 2E + r.
+        positions = [(2, 0), (2, 1), (1, 2 * num_rows)][: len(id_columns)]
+        node_ids, (src, dst, *node_codes), first_position = _number_nodes(id_columns, positions)
+        n = len(node_ids)
+        base, relation, relation_names, feature_names, features = other_columns.result()
 
-    base = np.ones(num_rows)
-    if "weight" in table.column_names:
-        base = _numbers(table, "weight", edges)
-        _require_positive(base, edges, "weight")
-    relation, relation_names = np.zeros(num_rows, dtype=np.int64), ("",)
-    if "relation" in table.column_names:
-        relation, relation_names = _relations(table, edges)
-    feature_names = tuple(c for c in table.column_names if c not in EDGE_COLUMNS)
-    features = _features(table, edges, feature_names)
-
-    order, starts_triple = _sort_edges(src, dst, relation, n, len(relation_names))
-    src, dst, relation, base = src[order], dst[order], relation[order], base[order]
-    features = np.take(features, order, axis=0)  # np.take, unlike features[order], gathers whole rows at once
+        order, src, dst, relation, starts_triple = _sort_edges(src, dst, relation, n, len(relation_names))
+        sorted_features = pool.submit(_gather_rows, features, order)
+        base = base[order]
+        features = sorted_features.result()
     merged = num_rows - int(np.count_nonzero(starts_triple))
     if merged:
         src, dst, relation, base, features = _merge_duplicate_edges(src, dst, relation, base, features, starts_triple)
@@ -324,20 +327,30 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
     return table
 
 
+# Text columns that hold a few distinct values (labels, not ids).
+_FEW_VALUES = ("relation", "split")
+
+
 def _read_csv(file: Path, text_columns: tuple[str, ...], use_threads: bool = True) -> pa.Table:
-    # Plain strings, not dictionary columns: the CSV reader builds one dictionary per block,
-    # and merging tens of large ones costs more than encoding the column once (_factorise).
+    # The CSV reader builds one dictionary per block of the file: cheap for a column of a few
+    # labels (no string column is built at all), but for ids, merging tens of large dictionaries
+    # costs more than encoding one string column once (_factorise).
+    types = {c: pa.dictionary(pa.int32(), pa.string()) if c in _FEW_VALUES else pa.string() for c in text_columns}
     return pacsv.read_csv(
         file,
         read_options=pacsv.ReadOptions(use_threads=use_threads),
-        convert_options=pacsv.ConvertOptions(column_types=dict.fromkeys(text_columns, pa.string())),
+        convert_options=pacsv.ConvertOptions(column_types=types),
     )
 
 
 def _read_parquet(file: Path, text_columns: tuple[str, ...]) -> pa.Table:
     # Parquet stores text dictionary-encoded: reading it so skips building the strings and
     # hashing them again. read_dictionary touches only text (byte-array) columns.
-    return pq.read_table(file, read_dictionary=list(text_columns), memory_map=True)
+    # ParquetFile rather than read_table: one file needs none of the dataset machinery.
+    with pq.ParquetFile(file) as parquet:
+        names = parquet.schema_arrow.names
+    with pq.ParquetFile(file, read_dictionary=[c for c in text_columns if c in names]) as parquet:
+        return parquet.read()
 
 
 def _csv_error_row(file: Path, text_columns: tuple[str, ...], message: str) -> tuple[int | None, str]:
@@ -395,21 +408,39 @@ def _missing_text(array: pa.Array) -> np.ndarray:
     return pc.fill_null(missing, True).to_numpy(zero_copy_only=False)
 
 
+_BLOCK = 1 << 16  # rows per block where a loop over blocks saves large temporaries
+
+
 @dataclass(frozen=True)
 class _Factors:
     """A column as codes into its distinct values.
 
     Attributes:
       codes: (rows,) integer position of each cell's value in ``values``; -1 for a null cell.
-      values: (K,) the distinct non-null values, each used by at least one cell.
-      first_row: (K,) int64 0-based row where each value first appears.
+      values: (K,) the non-null values, each used by at least one cell; distinct, except
+        that a value repeated in a file's own dictionary may stay repeated.
       first_null: 0-based row of the first null cell, or None.
     """
 
     codes: np.ndarray
     values: pa.Array
-    first_row: np.ndarray
     first_null: int | None
+
+    @cached_property
+    def first_row(self) -> np.ndarray:
+        """(K,) int64 0-based row where each value first appears."""
+        rows = self.codes.shape[0]
+        first = np.full(len(self.values), rows, dtype=np.int64)
+        # Block by block: one (rows,) array of row numbers would cost more (page faults) than the loop.
+        block = np.arange(min(rows, _BLOCK))
+        for start in range(0, rows, _BLOCK):
+            codes = self.codes[start : start + _BLOCK]
+            cells = block[: codes.shape[0]] + start
+            if self.first_null is not None:
+                valid = codes >= 0
+                codes, cells = codes[valid], cells[valid]
+            np.minimum.at(first, codes, cells)
+        return first
 
     def first_row_of(self, bad: np.ndarray, nulls_too: bool = False) -> int | None:
         """The first 0-based row whose value is flagged in ``bad`` (K,) (or, with ``nulls_too``, is null)."""
@@ -425,36 +456,55 @@ def _factorise(column: pa.ChunkedArray) -> _Factors:
     Validation and conversion then run on the K distinct values instead of on
     every cell: for node ids and relation labels K is far smaller than the row count.
     """
-    if pa.types.is_dictionary(column.type):
-        encoded = (column.unify_dictionaries() if column.num_chunks > 1 else column).combine_chunks()
-    else:
-        # One array first: encoding chunk by chunk gives each chunk its own dictionary,
-        # and unifying tens of large dictionaries costs several times the encoding itself.
+    if not pa.types.is_dictionary(column.type):
+        # One array first: encoding chunk by chunk would give each chunk its own dictionary.
         encoded = pc.dictionary_encode(column.combine_chunks())
-    indices = encoded.indices
-    codes = (pc.fill_null(indices, -1) if indices.null_count else indices).to_numpy(zero_copy_only=False)
-    # A dictionary read from a file may repeat a value, hold a null or hold a value no cell
-    # uses: encode it once more (it is small) so that the values come out distinct and non-null.
-    dictionary = pc.dictionary_encode(encoded.dictionary)
-    values = dictionary.dictionary
-    remap = pc.fill_null(dictionary.indices, -1).to_numpy(zero_copy_only=False)
-    if not np.array_equal(remap, np.arange(remap.shape[0])):
-        codes = np.append(remap, -1).astype(codes.dtype)[codes]  # code -1 (a null cell) picks the appended -1
-    null = codes < 0
-    first_null = int(null.argmax()) if null.any() else None
-    rows = codes.shape[0]
-    first_row = np.full(len(values), rows, dtype=np.int64)
-    cells = np.arange(rows)
-    if first_null is None:
-        np.minimum.at(first_row, codes, cells)
+        codes = pc.fill_null(encoded.indices, -1).to_numpy(zero_copy_only=False)
+        # The encoder's values are distinct, non-null, each used, in order of first appearance.
+        null = codes < 0
+        return _Factors(codes, encoded.dictionary, int(null.argmax()) if null.any() else None)
+
+    # A dictionary column read from a file: the chunks of one Parquet row group share one
+    # dictionary. Hash each distinct dictionary once (not every chunk's: tens of chunks can
+    # repeat a large one), and make the values non-null and used: a file's dictionary may
+    # hold a null or values no cell uses (or repeat a value: see below).
+    dictionaries, which = [], []
+    for chunk in column.chunks:
+        if not dictionaries or not chunk.dictionary.equals(dictionaries[-1]):
+            dictionaries.append(chunk.dictionary)
+        which.append(len(dictionaries) - 1)
+    if len(dictionaries) == 1 and not dictionaries[0].null_count:
+        # One dictionary, no null in it: keep it as it is. A repeated value stays two codes;
+        # the consumers that need distinct values merge them (_number_nodes, _relations).
+        values = dictionaries[0]
+        remap = np.arange(len(values))
     else:
-        np.minimum.at(first_row, codes[~null], cells[~null])
-    used = first_row < rows
-    if not used.all():  # values no cell uses (unused dictionary entries) must not become nodes
-        position = (np.cumsum(used) - 1).astype(codes.dtype)
-        codes = np.where(null, codes, position[codes])
-        values, first_row = values.filter(pa.array(used)), first_row[used]
-    return _Factors(codes, values, first_row, first_null)
+        merged = pc.dictionary_encode(pa.concat_arrays(dictionaries))
+        values = merged.dictionary
+        remap = pc.fill_null(merged.indices, -1).to_numpy(zero_copy_only=False)
+    code_type = np.int32 if len(values) < 2**31 else np.int64
+    offsets = np.cumsum([0] + [len(d) for d in dictionaries])
+    # Per dictionary: its entries' codes, then -1, which a null cell's index -1 picks.
+    lookups = [np.append(remap[lo:hi], -1).astype(code_type) for lo, hi in zip(offsets[:-1], offsets[1:])]
+    plain = [np.array_equal(lookup[:-1], np.arange(lookup.shape[0] - 1)) for lookup in lookups]
+    codes = np.empty(len(column), dtype=code_type)
+    start = 0
+    for chunk, d in zip(column.chunks, which):
+        indices = chunk.indices
+        indices = (pc.fill_null(indices, -1) if indices.null_count else indices).to_numpy(zero_copy_only=False)
+        if plain[d] and not chunk.null_count:
+            codes[start : start + len(chunk)] = indices  # the usual case: a copy, no lookup
+        else:
+            np.take(lookups[d], indices, out=codes[start : start + len(chunk)])
+        start += len(chunk)
+    null = codes < 0
+    used = np.zeros(len(values), dtype=bool)
+    used[codes[~null] if null.any() else codes] = True
+    if not used.all():  # values no cell uses must not become nodes or labels
+        position = (np.cumsum(used) - 1).astype(code_type)
+        codes = np.where(null, code_type(-1), position[codes])
+        values = values.filter(pa.array(used))
+    return _Factors(codes, values, int(null.argmax()) if null.any() else None)
 
 
 def _raise_at(path: str | Path, row: int | None, problem: str, column: str | None = None) -> None:
@@ -464,7 +514,7 @@ def _raise_at(path: str | Path, row: int | None, problem: str, column: str | Non
 
 
 def _id_factors(table: pa.Table, column: str, path: str | Path) -> _Factors:
-    """The node ids of one column, checked, as codes into distinct int64 or large_string values."""
+    """The node ids of one column, checked, as codes into int64 or large_string values."""
     ids = _factorise(table.column(column))
     values = ids.values
     if pa.types.is_integer(values.type):
@@ -488,7 +538,7 @@ def _id_factors(table: pa.Table, column: str, path: str | Path) -> _Factors:
         _raise_at(path, row, "missing node id (empty cell or NaN)", column)
     else:
         raise DataError(path, f"node ids must be integers or text, not {values.type}", column=column)
-    return _Factors(ids.codes, values, ids.first_row, ids.first_null)
+    return _Factors(ids.codes, values, ids.first_null)
 
 
 def _number_nodes(
@@ -524,8 +574,10 @@ def _number_nodes(
 def _canonical_ints(array: pa.Array) -> pa.Array | None:
     """The int64 values of a text array if every entry is plain integer text, else None."""
     # Checked by pattern first: a failing cast is slow, and the cast accepts "01", which must stay text.
-    if not pc.all(pc.match_substring_regex(array, _PLAIN_INTEGER)).as_py():
-        return None
+    # A few leading values first: text ids usually fail there, without a pass over all values.
+    for part in (array.slice(0, 64), array):
+        if not pc.all(pc.match_substring_regex(part, _PLAIN_INTEGER)).as_py():
+            return None
     try:
         return array.cast(pa.int64())
     except pa.ArrowInvalid:  # 19 digits beyond the int64 range
@@ -552,10 +604,14 @@ def _lookup(ids: pa.Array, node_ids: pa.Array) -> np.ndarray:
 
 def _numbers(table: pa.Table, column: str, path: str | Path, hint: str = "") -> np.ndarray:
     """(rows,) float64 values of a numeric column, NaN where a cell is empty."""
-    array = _plain(table.column(column))
+    array = table.column(column)
+    if pa.types.is_dictionary(array.type):
+        array = _plain(array)
     kind = array.type
     if pa.types.is_integer(kind) or pa.types.is_floating(kind) or pa.types.is_boolean(kind) or pa.types.is_decimal(kind):
+        # Straight from the chunks: one copy at most (none for one float64 chunk without nulls).
         return array.cast(pa.float64()).to_numpy(zero_copy_only=False)
+    array = _plain(array)
     if _is_text(array):
         text = pd.Series(array.to_numpy(zero_copy_only=False), dtype=object)
         values = pd.to_numeric(text, errors="coerce").to_numpy(dtype=np.float64)
@@ -574,6 +630,28 @@ def _require_positive(values: np.ndarray, path: str | Path, column: str, allow_z
 # --------------------------------------------------------------------------- edge table
 
 
+def _edge_columns(
+    table: pa.Table, path: str | Path
+) -> tuple[np.ndarray, np.ndarray, tuple[str, ...], tuple[str, ...], np.ndarray]:
+    """The edge table's columns other than the ids, checked, in file order.
+
+    Returns:
+      base (E,) float64, relation (E,) int64 codes, the relation labels, the
+      feature names (f,) and the (E, f) float64 feature matrix.
+    """
+    num_rows = table.num_rows
+    if "weight" in table.column_names:
+        base = _numbers(table, "weight", path)
+        _require_positive(base, path, "weight")
+    else:
+        base = np.ones(num_rows)
+    relation, relation_names = np.zeros(num_rows, dtype=np.int64), ("",)
+    if "relation" in table.column_names:
+        relation, relation_names = _relations(table, path)
+    feature_names = tuple(c for c in table.column_names if c not in EDGE_COLUMNS)
+    return base, relation, relation_names, feature_names, _features(table, path, feature_names)
+
+
 def _relations(table: pa.Table, path: str | Path) -> tuple[np.ndarray, tuple[str, ...]]:
     """(E,) int64 relation codes and the labels, sorted as text, they index."""
     labels = _factorise(table.column("relation"))
@@ -581,60 +659,92 @@ def _relations(table: pa.Table, path: str | Path) -> tuple[np.ndarray, tuple[str
         raise DataError(path, f"relation labels must be text or integers, not {labels.values.type}", column="relation")
     text = labels.values.cast(pa.large_string())
     _raise_at(path, labels.first_row_of(_missing_text(text), nulls_too=True), "missing relation label", "relation")
-    names = text.to_pylist()
-    order = np.argsort(np.array(names, dtype=object), kind="stable")
-    rank = np.empty(len(names), dtype=np.int64)
-    rank[order] = np.arange(len(names))
-    return rank[labels.codes], tuple(names[i] for i in order)
+    names, slot = np.unique(np.array(text.to_pylist(), dtype=object), return_inverse=True)  # sorted as text
+    return slot.astype(np.int64)[labels.codes], tuple(names)
 
 
 def _features(table: pa.Table, path: str | Path, names: tuple[str, ...]) -> np.ndarray:
-    """(E, f) float64 feature matrix; refuses non-numeric columns and NaN/inf values."""
+    """(E, f) float64 feature matrix, in file order; refuses non-numeric columns and NaN/inf values."""
     columns = [_numbers(table, name, path, hint=_FEATURE_HINT) for name in names]
-    features = np.column_stack(columns) if columns else np.zeros((table.num_rows, 0))
-    bad = ~np.isfinite(features)
-    if bad.any():
-        row = int(bad.any(axis=1).argmax())
-        col = int(bad[row].argmax())
-        raise DataError(path, f"feature value {float(features[row, col])!r} is not a finite number", row + 1, names[col])
-    return features
+    # Checked column by column: no (E, f) temporaries before the one matrix.
+    bad_rows = [int(bad.argmax()) if bad.any() else table.num_rows for bad in (~np.isfinite(c) for c in columns)]
+    if columns and min(bad_rows) < table.num_rows:
+        row = min(bad_rows)
+        col = bad_rows.index(row)  # the first bad column in the first bad row
+        raise DataError(path, f"feature value {float(columns[col][row])!r} is not a finite number", row + 1, names[col])
+    return np.column_stack(columns) if columns else np.zeros((table.num_rows, 0))
+
+
+def _gather_rows(matrix: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """(E, f) C-ordered matrix whose row i is row ``order[i]`` of ``matrix`` (E, f)."""
+    out = np.empty((order.shape[0], matrix.shape[1]))
+    # mode="clip" skips the bounds check and its buffer: order is a permutation, nothing is clipped.
+    np.take(matrix, order, axis=0, out=out, mode="clip")
+    return out
+
+
+def _sorted_fields(fields: list[tuple[np.ndarray, int]], index_bits: int) -> tuple[np.ndarray, np.ndarray]:
+    """A stable sort of the rows by integer bit fields, the row index packed below them.
+
+    One plain sort of (E,) uint64 words: much faster than an argsort, and rows
+    with equal fields keep their order.
+
+    Args:
+      fields: (values (E,) >= 0, bits) pairs, most significant first; each
+        field's values below 2**bits, the bits of all fields plus ``index_bits`` <= 64.
+      index_bits: bits of the row index, (E - 1).bit_length().
+
+    Returns:
+      order (E,) int64 permutation of the rows; the sorted (E,) uint64 words
+      with the row index shifted out.
+    """
+    packed = fields[0][0].astype(np.uint64)  # in place from here: every temporary of E words costs page faults
+    for field, bits in fields[1:] + [(np.arange(packed.shape[0]), index_bits)]:
+        packed <<= np.uint64(bits)
+        packed |= np.asarray(field, dtype=np.int64).view(np.uint64)  # values are >= 0: the same bits
+    packed.sort()
+    order = np.bitwise_and(packed, np.uint64((1 << index_bits) - 1)).view(np.int64)
+    packed >>= np.uint64(index_bits)
+    return order, packed
 
 
 def _sort_edges(
     src: np.ndarray, dst: np.ndarray, relation: np.ndarray, n: int, num_relations: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """The order of the edges by (dst, src, relation), and where each triple starts.
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Sort the edges by (dst, src, relation), stably, and find where each triple starts.
+
+    Args:
+      src, dst: (E,) int64 node indices in [0, n).
+      relation: (E,) int64 relation codes in [0, num_relations).
 
     Returns:
-      order (E,) int64 permutation of the rows; starts (E,) bool, True where the
-      sorted row's triple differs from the row before (always True at 0).
+      order (E,) int64 permutation of the rows; src, dst, relation (E,) int64
+      in that order; starts (E,) bool, True where the sorted row's triple
+      differs from the row before (always True at 0).
     """
     rows = src.shape[0]
-    index_bits = max(rows - 1, 1).bit_length()
-    num_keys = n * n * num_relations  # Python int: no overflow
-    if num_keys <= 2 ** (64 - index_bits):
-        # Row index packed below the key: one plain sort of integers (much faster than an
-        # argsort), and rows with the same triple stay in file order.
-        packed = ((dst * n + src) * num_relations + relation).astype(np.uint64)
-        packed <<= np.uint64(index_bits)
-        packed |= np.arange(rows, dtype=np.uint64)
-        packed.sort()
-        order = (packed & np.uint64((1 << index_bits) - 1)).astype(np.int64)
-        key = packed >> np.uint64(index_bits)
-    elif num_keys < 2**63:
-        key = (dst * n + src) * num_relations + relation
-        order = np.argsort(key)  # not stable: only the summation order of duplicates depends on it
-        key = key[order]
-    else:  # n too large for one int64 key
+    node_bits, relation_bits, index_bits = (n - 1).bit_length(), (num_relations - 1).bit_length(), (rows - 1).bit_length()
+    starts = np.ones(rows, dtype=bool)
+    if node_bits + relation_bits + index_bits > 64:  # n beyond any graph held in memory: plain lexsort
         order = np.lexsort((relation, src, dst))
-        triples = np.stack([dst[order], src[order], relation[order]])
-        starts = np.ones(rows, dtype=bool)
-        starts[1:] = (triples[:, 1:] != triples[:, :-1]).any(axis=0)
-        return order, starts
-    starts = np.empty(rows, dtype=bool)
-    starts[:1] = True
-    np.not_equal(key[1:], key[:-1], out=starts[1:])
-    return order, starts
+        src, dst, relation = src[order], dst[order], relation[order]
+        starts[1:] = (dst[1:] != dst[:-1]) | (src[1:] != src[:-1]) | (relation[1:] != relation[:-1])
+        return order, src, dst, relation, starts
+    low_bits = node_bits + relation_bits  # (src, relation) as one field
+    if low_bits + node_bits + index_bits <= 64:  # the whole triple in one word
+        order, key = _sorted_fields([(dst, 0), (src, node_bits), (relation, relation_bits)], index_bits)
+        high = key >> np.uint64(low_bits)
+        low = np.bitwise_and(key, np.uint64((1 << low_bits) - 1), out=key)
+    else:  # two stable sorts, least significant field first (a two-digit radix sort)
+        by_low, low = _sorted_fields([(src, 0), (relation, relation_bits)], index_bits)
+        position, high = _sorted_fields([(dst[by_low], 0)], index_bits)
+        order, low = by_low[position], low[position]
+    # The sorted src, dst and relation come out of the fields, not from three random gathers.
+    np.not_equal(high[1:], high[:-1], out=starts[1:])
+    starts[1:] |= low[1:] != low[:-1]
+    relation = np.bitwise_and(low, np.uint64((1 << relation_bits) - 1)).view(np.int64)
+    src = (low >> np.uint64(relation_bits)).view(np.int64)
+    return order, src, high.view(np.int64), relation, starts
 
 
 def _merge_duplicate_edges(

@@ -8,13 +8,15 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.parquet as pq
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
 from fitrank.errors import ConfigError, DataError
 from fitrank.graph import SPLITS, build_graph
-from fitrank.tables import load_dataset, random_split, read_edges, read_pairs
+from fitrank.tables import _factorise, _relations, _sort_edges, load_dataset, random_split, read_edges, read_pairs
 
 GOOD_EDGES = "source,target\na,b\nb,c\nc,a\n"
 GOOD_PAIRS = "preferred,other\na,b\nb,c\n"
@@ -443,11 +445,17 @@ edge_rows = st.lists(
 )
 
 
-@given(rows=edge_rows)
-def test_merged_edges_match_a_dictionary_reference(tmp_path_factory, rows):
+@given(rows=edge_rows, row_group=st.integers(1, 6))
+def test_merged_edges_match_a_dictionary_reference(tmp_path_factory, rows, row_group):
     folder = tmp_path_factory.mktemp("prop")
     text = "source,target,relation,weight,score\n" + "".join(f"{s},{t},{r},{w},{f}\n" for s, t, r, w, f in rows)
     graph = read_edges(write(folder, "e.csv", text))
+    # The same rows as Parquet in row groups of `row_group` rows: each group has its own
+    # relation dictionary, which the reader must merge.
+    frame = pd.DataFrame(rows, columns=["source", "target", "relation", "weight", "score"])
+    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), folder / "e.parquet", row_group_size=row_group)
+    for name, value in graph_arrays(read_edges(folder / "e.parquet")).items():
+        np.testing.assert_array_equal(value, graph_arrays(graph)[name], err_msg=name)
 
     # Reference: ids by first appearance, then per (source, target, relation) the
     # summed weight and the weight-averaged feature, by a dictionary walk.
@@ -471,3 +479,116 @@ def test_merged_edges_match_a_dictionary_reference(tmp_path_factory, rows):
         assert math.isclose(got[key][0], weight, rel_tol=1e-12)
         assert math.isclose(got[key][1], weighted / weight, rel_tol=1e-12, abs_tol=1e-12)
     assert np.all(np.diff(graph.dst) >= 0)
+
+
+# --------------------------------------------------------------------------- dictionary columns, chunks and sort keys
+
+
+def test_parquet_row_groups_with_their_own_dictionaries_read_like_csv(tmp_path):
+    rng = np.random.default_rng(5)
+    names = np.array([f"v{i:03d}" for i in range(60)], dtype=object)
+    frame = pd.DataFrame({
+        "source": names[rng.integers(0, 60, 400)],
+        "target": names[rng.integers(0, 60, 400)],
+        "relation": np.array(["cites", "links", "quotes"], dtype=object)[rng.integers(0, 3, 400)],
+        "weight": rng.uniform(0.5, 2.0, 400),
+        "length": rng.normal(size=400),
+    })
+    frame.to_csv(tmp_path / "e.csv", index=False)
+    pq.write_table(pa.Table.from_pandas(frame, preserve_index=False), tmp_path / "e.parquet", row_group_size=37)
+    # the case under test: the Parquet reader hands over several different dictionaries
+    chunks = pq.ParquetFile(tmp_path / "e.parquet", read_dictionary=["source"]).read().column("source").chunks
+    assert len({tuple(chunk.dictionary.to_pylist()) for chunk in chunks}) > 1
+    from_csv, from_parquet = read_edges(tmp_path / "e.csv"), read_edges(tmp_path / "e.parquet")
+    for name, value in graph_arrays(from_csv).items():
+        np.testing.assert_array_equal(value, graph_arrays(from_parquet)[name], err_msg=name)
+    assert from_csv.relation_names == from_parquet.relation_names == ("cites", "links", "quotes")
+
+
+def test_unused_categories_of_categorical_columns_add_no_node_and_no_relation(tmp_path):
+    frame = pd.DataFrame({
+        "source": pd.Categorical(["a", "b", "a"], categories=["ghost", "a", "b"]),
+        "target": pd.Categorical(["b", "c", "c"], categories=["c", "b", "unseen"]),
+        "relation": pd.Categorical(["x", "y", "x"], categories=["y", "never", "x"]),
+    })
+    frame.to_parquet(tmp_path / "e.parquet")
+    # the case under test: the file keeps the unused categories in its dictionaries
+    chunk = pq.ParquetFile(tmp_path / "e.parquet", read_dictionary=["source"]).read().column("source").chunk(0)
+    assert "ghost" in chunk.dictionary.to_pylist()
+    graph = read_edges(tmp_path / "e.parquet")
+    assert list(graph.node_ids) == ["a", "b", "c"]  # first appearance, not category order
+    assert graph.relation_names == ("x", "y")
+    np.testing.assert_array_equal(graph.src, [0, 0, 1])  # sorted by (target, source): a->b, a->c, b->c
+    np.testing.assert_array_equal(graph.dst, [1, 2, 2])
+    np.testing.assert_array_equal(graph.relation, [0, 0, 1])
+
+
+cells = st.lists(st.one_of(st.none(), st.sampled_from("abcd")), min_size=1, max_size=12)
+
+
+@st.composite
+def dictionary_chunks(draw):
+    """Chunks of a dictionary column as a file could hold them: dictionaries that repeat
+    values, hold nulls or values no cell uses, and cells that are null."""
+    chunks = []
+    for _ in range(draw(st.integers(1, 4))):
+        dictionary = draw(cells)
+        indices = draw(st.lists(st.one_of(st.none(), st.integers(0, len(dictionary) - 1)), min_size=0, max_size=10))
+        chunks.append(pa.DictionaryArray.from_arrays(pa.array(indices, type=pa.int32()), pa.array(dictionary, pa.string())))
+    return pa.chunked_array(chunks)
+
+
+@given(column=dictionary_chunks())
+def test_factorised_dictionary_column_decodes_to_its_cells(column):
+    cells_in_order = column.to_pylist()  # Arrow's own decoding is the reference
+    factors = _factorise(column)
+    values = factors.values.to_pylist()
+    decoded = [None if code < 0 else values[code] for code in factors.codes]
+    assert decoded == cells_in_order
+    assert None not in values
+    used = {int(code) for code in factors.codes if code >= 0}
+    assert used == set(range(len(values)))  # every value is used by some cell
+    nulls = [row for row, cell in enumerate(cells_in_order) if cell is None]
+    assert factors.first_null == (nulls[0] if nulls else None)
+    for k in range(len(values)):
+        assert factors.first_row[k] == list(factors.codes).index(k)
+
+
+def test_relation_dictionary_repeating_a_label_gives_one_relation():
+    column = pa.DictionaryArray.from_arrays(pa.array([0, 1, 2, 0], type=pa.int32()), pa.array(["x", "y", "x"]))
+    codes, names = _relations(pa.table({"relation": column}), "edges.parquet")
+    assert names == ("x", "y")
+    np.testing.assert_array_equal(codes, [0, 1, 0, 0])
+
+
+@pytest.mark.parametrize("n", [50, 2**27, 2**40, 2**62])  # one sort, two sorts (twice), lexsort
+def test_edge_order_matches_lexsort_at_every_key_width(n):
+    rng = np.random.default_rng(n % 1000)
+    spots = rng.integers(0, n, 40)  # few distinct nodes, so that triples repeat
+    src, dst = spots[rng.integers(0, 40, 1000)], spots[rng.integers(0, 40, 1000)]
+    relation = rng.integers(0, 3, 1000)
+    order, src_sorted, dst_sorted, relation_sorted, starts = _sort_edges(src, dst, relation, n, 3)
+    reference = np.lexsort((relation, src, dst))
+    triples = np.stack([dst, src, relation], axis=1)
+    np.testing.assert_array_equal(triples[order], triples[reference])
+    np.testing.assert_array_equal(np.stack([dst_sorted, src_sorted, relation_sorted], axis=1), triples[reference])
+    assert src_sorted.dtype == dst_sorted.dtype == relation_sorted.dtype == np.int64
+    expected_starts = np.ones(1000, dtype=bool)
+    expected_starts[1:] = (np.diff(triples[reference], axis=0) != 0).any(axis=1)
+    np.testing.assert_array_equal(starts, expected_starts)
+    assert expected_starts.sum() < 1000  # the case under test: some triples repeat
+    np.testing.assert_array_equal(order, reference)  # stable: repeated triples keep file order, as in lexsort
+
+
+@pytest.mark.parametrize(
+    "text, row, column",
+    [
+        ("source,target,weight,age\na,b,0,1\n,c,1,inf\n", 2, "source"),  # id error, though weight's row is earlier
+        ("source,target,weight,relation,age\na,b,1,,1\nb,c,0,x,inf\n", 2, "weight"),
+        ("source,target,relation,age\na,b,x,inf\nb,c,,1\n", 2, "relation"),
+    ],
+)
+def test_checks_report_in_column_order_ids_weight_relation_features(tmp_path, text, row, column):
+    with pytest.raises(DataError) as err:
+        read_edges(write(tmp_path, "e.csv", text))
+    assert (err.value.row, err.value.column) == (row, column)
