@@ -274,7 +274,8 @@ def reduced_objective(scorer, pairs: Pairs, spec: ObjectiveSpec, *, n: int, thet
     if param is None:
         at_theta0 = _scores(jnp.asarray(theta0, dtype=jnp.float64), scorer.arrays, score_fn=scorer.fn)
         spec = calibrate(spec, np.asarray(at_theta0), localize(pairs, scorer.nodes), n=n)
-    arrays = {"model": scorer.arrays, **_pair_arrays(pairs, scorer.nodes, spec, n), **_penalty_arrays(spec, theta0)}
+    arrays = jax.device_put({"model": scorer.arrays, **_pair_arrays(pairs, scorer.nodes, spec, n),
+                             **_penalty_arrays(spec, theta0)})  # copied in once, not at every step
     static = {"score_fn": scorer.fn, "loss_name": loss.name}
     return Objective(functools.partial(_reduced_value, **static),
                      functools.partial(_reduced_value_and_grad, **static),

@@ -162,7 +162,9 @@ class ReducedModel:
         def values(theta, arrays):
             return arrays["basis_nodes"] @ solve(theta, arrays["solve"])
 
-        return Scorer(values, {"basis_nodes": self.basis.vectors[nodes], "solve": self.arrays}, nodes)
+        # device arrays once, here: NumPy arguments would be copied in on every call
+        arrays = jax.device_put({"basis_nodes": self.basis.vectors[nodes], "solve": self.arrays})
+        return Scorer(values, arrays, nodes)
 
     def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
         """Certified ||x(theta) - U c(theta)||_1 (one full sparse mat-vec)."""
@@ -233,7 +235,8 @@ def _assemble(problem: PageRankProblem, settings: ReductionSettings, basis: PodB
     timings = dict(timings, assemble_s=time.perf_counter() - start)
     info["timings"] = timings
     info["offline_s"] = float(sum(timings.values()))
-    return ReducedModel(problem, settings, method, basis, np.asarray(rows, dtype=np.int64), thetas, arrays, info)
+    return ReducedModel(problem, settings, method, basis, np.asarray(rows, dtype=np.int64), thetas,
+                        jax.device_put(arrays), info)
 
 
 def build_reduced_model(problem: PageRankProblem, settings: ReductionSettings = ReductionSettings(), *,
