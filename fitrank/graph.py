@@ -92,6 +92,16 @@ class Graph:
             self._cache["out_edges"] = (order, ptr)
         return self._cache["out_edges"]
 
+    def in_edges_of(self, nodes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(edge ids into ``nodes``, position in ``nodes`` of each edge's target), grouped by node."""
+        return _expand_ranges(self.indptr, np.asarray(nodes, dtype=np.int64))
+
+    def out_edges_of(self, nodes: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(edge ids out of ``nodes``, position in ``nodes`` of each edge's source), grouped by node."""
+        order, ptr = self.out_edges()
+        positions, group = _expand_ranges(ptr, np.asarray(nodes, dtype=np.int64))
+        return order[positions], group
+
     def matrix(self, data: np.ndarray) -> sp.csr_matrix:
         """The (n, n) CSR matrix with ``data`` (E,) on this graph's pattern.
 
@@ -119,6 +129,13 @@ class Graph:
         h.update("\x1f".join(self.relation_names).encode())
         h.update("\x1f".join(self.feature_names).encode())
         return h.hexdigest()[:16]
+
+
+def _expand_ranges(ptr: np.ndarray, groups: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Concatenated ranges ptr[g]:ptr[g+1] for each g in ``groups``, and each entry's group position."""
+    counts = ptr[groups + 1] - ptr[groups]
+    offsets = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
+    return np.repeat(ptr[groups], counts) + offsets, np.repeat(np.arange(groups.size), counts)
 
 
 @dataclass(frozen=True, eq=False)

@@ -146,15 +146,6 @@ def probe_matrix(problem: PageRankProblem, vectors: np.ndarray, thetas: np.ndarr
     return np.hstack([problem.operator(theta).apply(vectors) for theta in thetas])
 
 
-def in_edges_of(problem: PageRankProblem, rows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Edge ids into ``rows`` and the position in ``rows`` of each edge's target."""
-    indptr = problem.graph.indptr
-    counts = indptr[rows + 1] - indptr[rows]
-    starts = np.repeat(indptr[rows], counts)
-    offsets = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
-    return starts + offsets, np.repeat(np.arange(rows.size), counts)
-
-
 def interpolation_arrays(problem: PageRankProblem, vectors: np.ndarray, rows: np.ndarray) -> tuple[dict, int]:
     """Offline arrays of the interpolation solve at ``rows``.
 
@@ -178,7 +169,7 @@ def interpolation_arrays(problem: PageRankProblem, vectors: np.ndarray, rows: np
 
         arrays["terms"] = affine_operator_terms(problem, vectors)[:, rows, :]
         return arrays, 0
-    edge_ids, target_pos = in_edges_of(problem, rows)
+    edge_ids, target_pos = problem.graph.in_edges_of(rows)
     sources, slot = np.unique(graph.src[edge_ids], return_inverse=True)
     tables = weighting.local_tables(edge_ids)
     arrays.update({

@@ -286,12 +286,7 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
     def local_tables(edge_ids):
         edge_ids = np.asarray(edge_ids, dtype=np.int64)
         sources = np.unique(graph.src[edge_ids])
-        order, ptr = graph.out_edges()
-        counts = ptr[sources + 1] - ptr[sources]
-        starts = np.repeat(ptr[sources], counts)
-        offsets = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
-        out_ids = order[starts + offsets]  # all out-edges of the sources, grouped by source
-        out_slot = np.repeat(np.arange(sources.size), counts)
+        out_ids, out_slot = graph.out_edges_of(sources)  # all out-edges of the sources, grouped by source
         lookup = np.full(graph.num_edges, -1, dtype=np.int64)
         lookup[out_ids] = np.arange(out_ids.size)
         return {
