@@ -22,6 +22,8 @@ from hypothesis import given
 from hypothesis import strategies as st
 from test_weightings import examples, random_theta, random_typed_graph, seeds, shapes
 
+from tests._datasets import generated
+
 from fitrank.errors import ConvergenceError, FitrankInputError
 from fitrank.graph import build_graph
 from fitrank.pagerank import (
@@ -34,7 +36,7 @@ from fitrank.pagerank import (
 )
 from fitrank.weightings import KINDS, make_weighting
 
-SOLVERS = ("power", "bicgstab")
+SOLVERS = ("power", "bicgstab", "anderson")
 
 
 # ----------------------------------------------------------------------------- independent references
@@ -229,7 +231,8 @@ def test_the_reference_walk_agrees_with_the_weightings():
 
 @pytest.mark.parametrize("kind", KINDS)
 @pytest.mark.parametrize("dangling", DANGLING_POLICIES)
-def test_adjoint_gradient_matches_central_differences(kind, dangling):
+@pytest.mark.parametrize("method", ["auto", "anderson"])
+def test_adjoint_gradient_matches_central_differences(kind, dangling, method):
     # Central differences (step 1e-5: truncation ~1e-10, rounding ~1e-13/1e-5 relative); common practice.
     graph = random_typed_graph(11, n=18, num_relations=3, num_features=3)
     weighting = make_weighting(kind, graph)
@@ -241,7 +244,8 @@ def test_adjoint_gradient_matches_central_differences(kind, dangling):
         return g @ x + 0.5 * graph.n * x @ x, x
 
     _, x = objective(theta)
-    grad, report = adjoint_gradient(graph, weighting, theta, x, g + graph.n * x, dangling=dangling, tol=1e-14)
+    grad, report = adjoint_gradient(graph, weighting, theta, x, g + graph.n * x, dangling=dangling, tol=1e-14,
+                                    method=method)
     assert report.converged
     step = 1e-5
     numeric = np.array([(objective(theta + step * e)[0] - objective(theta - step * e)[0]) / (2 * step)
@@ -259,6 +263,57 @@ def test_adjoint_gradient_reuses_a_given_operator():
     with_op, _ = adjoint_gradient(graph, weighting, theta, x, g, op=op)
     without, _ = adjoint_gradient(graph, weighting, theta, x, g, damping=0.7, dangling="self")
     np.testing.assert_allclose(with_op, without, rtol=1e-10, atol=1e-14)
+
+
+def test_every_solver_converges_on_rank_sinks():
+    # Closed 2-cycles give the walk the eigenvalues +1 and -1 (rank sinks): power iteration then
+    # converges like alpha^k only. Reference: scipy.sparse.linalg.spsolve of M x = (1 - alpha) v.
+    graph = random_typed_graph(21, n=16, num_relations=2)
+    dangling = np.flatnonzero(graph.out_degree() == 0)
+    pairs = dangling[: dangling.size // 2 * 2].reshape(-1, 2)
+    assert pairs.shape[0] >= 1
+    src = np.concatenate([graph.src, pairs[:, 0], pairs[:, 1]])
+    dst = np.concatenate([graph.dst, pairs[:, 1], pairs[:, 0]])
+    sinks = build_graph(src, dst, graph.n, teleport=graph.teleport)
+    weighting = make_weighting("scale", sinks)
+    p, leak = reference_walk(sinks, "scale", weighting.theta0)
+    for alpha in (0.85, 0.99):
+        expected = reference_solve(sinks.n, sinks.src, sinks.dst, p, leak, sinks.teleport, alpha, "teleport")
+        for method in SOLVERS + ("auto",):
+            result = pagerank(sinks, weighting, weighting.theta0, damping=alpha, method=method, tol=1e-12)
+            assert result.report.converged
+            assert np.abs(result.x - expected).sum() < 1e-10
+
+
+def test_anderson_reports_the_residual_of_the_vector_it_returns():
+    # The residual is measured on the returned vector, so certified_bound (one mat-vec, DESIGN.md
+    # section 1) recomputes it: equal up to rounding, and the report's bound is ||r||_1 / (1 - alpha).
+    graph = random_typed_graph(22, n=16, num_relations=3)
+    weighting = make_weighting("features", graph)
+    for alpha, maxiter in ((0.85, 5), (0.99, 9), (0.99, 200)):
+        op = walk_operator(graph, weighting, random_theta(weighting, 22), damping=alpha)
+        result = solve_operator(op, method="anderson", tol=1e-12, maxiter=maxiter, raise_on_failure=False)
+        true_residual = certified_bound(op, result.x) * (1 - alpha)
+        assert result.report.residual == pytest.approx(true_residual, rel=1e-6, abs=1e-16)
+        assert result.report.bound == pytest.approx(result.report.residual / (1 - alpha), rel=1e-9)
+
+
+def test_anderson_spends_fewer_mat_vecs_than_power_on_a_generated_graph():
+    # Anderson acceleration (Walker & Ni, SIAM J. Numer. Anal. 49(4), 2011) on the suite's shared
+    # generated "scale" dataset (fitrank.generate, 2,000 nodes, seed 11), tolerance 1e-8: it may not
+    # spend more mat-vecs than plain power iteration at damping 0.85 and must spend fewer at 0.99.
+    # Counts, not times.
+    graph = generated("scale")[0].graph
+    weighting = make_weighting("scale", graph)
+    counts = {}
+    for alpha in (0.85, 0.99):
+        op = walk_operator(graph, weighting, weighting.theta0, damping=alpha)
+        for method in ("power", "anderson"):
+            result = solve_operator(op, method=method, tol=1e-8)
+            assert certified_bound(op, result.x) <= 1e-8
+            counts[method, alpha] = result.report.iterations
+    assert counts["anderson", 0.85] <= counts["power", 0.85]
+    assert counts["anderson", 0.99] < counts["power", 0.99]
 
 
 # ----------------------------------------------------------------------------- properties

@@ -14,7 +14,7 @@ from scipy.stats import kendalltau
 
 from fitrank.basis import extend_basis, pod_basis
 from fitrank.errors import FitrankInputError, ModelMismatchError
-from fitrank.interpolation import RowChoice, select_rows
+from fitrank.interpolation import RowChoice, constrained_least_squares, select_rows
 from fitrank.pagerank import PageRankProblem
 from fitrank.reduced import ReductionSettings, build_reduced_model, enrich, load_reduced_model
 from fitrank.snapshots import solve_snapshots
@@ -215,3 +215,34 @@ def test_snapshots_on_local_processes_and_on_a_dask_executor():
     with distributed.Client(processes=False, n_workers=1, threads_per_worker=2, dashboard_address=None) as client:
         on_dask = solve_snapshots(problem, thetas, executor=client.get_executor(), progress=False)
     np.testing.assert_allclose(on_dask, serial, rtol=0, atol=1e-12)
+
+
+def test_constrained_least_squares_matches_the_dense_kkt_solve_and_finite_differences():
+    # Reference: the KKT system of equality-constrained least squares (Golub & Van Loan,
+    # "Matrix Computations", 4th ed., sec. 6.2), assembled densely and solved by numpy:
+    # [[B^T B, u], [u^T, 0]] [c; mu] = [B^T f; 1]. Columns of very different scales test
+    # the equilibration.
+    rng = np.random.default_rng(3)
+    r, k = 40, 12
+    matrix = rng.normal(size=(r, k)) * np.logspace(-3, 2, k)
+    rhs, sums = rng.normal(size=r), rng.uniform(0.5, 2.0, size=k)
+    kkt = np.block([[matrix.T @ matrix, sums[:, None]], [sums[None, :], np.zeros((1, 1))]])
+    expected = np.linalg.solve(kkt, np.concatenate([matrix.T @ rhs, [1.0]]))[:k]
+    got = np.asarray(jax.jit(constrained_least_squares)(matrix, rhs, sums))
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-12)
+    assert abs(sums @ got - 1.0) < 1e-12
+
+    # Implicit derivative against central differences of the reference solve.
+    probe = rng.normal(size=k)
+    grad = jax.grad(lambda m: probe @ constrained_least_squares(m, rhs, sums))(jnp.asarray(matrix))
+    i, j, h = 5, 7, 1e-6 * abs(matrix[5, 7])
+    plus, minus = matrix.copy(), matrix.copy()
+    plus[i, j] += h
+    minus[i, j] -= h
+
+    def reference(m):
+        system = np.block([[m.T @ m, sums[:, None]], [sums[None, :], np.zeros((1, 1))]])
+        return probe @ np.linalg.solve(system, np.concatenate([m.T @ rhs, [1.0]]))[:k]
+
+    fd = (reference(plus) - reference(minus)) / (2 * h)
+    assert abs(float(grad[i, j]) - fd) <= 1e-6 * max(1.0, abs(fd))
