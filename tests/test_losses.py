@@ -35,6 +35,14 @@ def test_logistic_is_stable_far_out():
     assert grads == pytest.approx([0.0, 1.0], abs=1e-300)
 
 
+def test_logistic_agrees_with_jax_softplus_in_value_and_slope():
+    # Reference: jax.nn.softplus and jax.nn.sigmoid (the library's own implementations).
+    z = jnp.concatenate([jnp.linspace(-50.0, 50.0, 1001), jnp.array([-1e-12, 0.0, 1e-12, -700.0, 700.0])])
+    np.testing.assert_allclose(logistic_loss(z, 1.0), jax.nn.softplus(z), rtol=1e-15, atol=1e-300)
+    slopes = jax.vmap(jax.grad(logistic_loss), in_axes=(0, None))(z, 1.0)
+    np.testing.assert_allclose(slopes, jax.nn.sigmoid(z), rtol=1e-15, atol=1e-300)
+
+
 @pytest.mark.parametrize("name", sorted(LOSSES))
 @given(z=st.floats(-4.0, 4.0), param=st.floats(0.2, 3.0))
 def test_derivative_matches_central_differences(name, z, param):
