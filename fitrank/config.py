@@ -38,6 +38,7 @@ from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.losses import LOSSES, get_loss
 from fitrank.objective import ObjectiveSpec
 from fitrank.pagerank import DANGLING_POLICIES
+from fitrank.reduced import ReductionSettings
 from fitrank.train import OPTIMIZERS, LoopSettings
 from fitrank.weightings import KINDS
 
@@ -101,7 +102,8 @@ class WeightingSection:
 class ReductionSection:
     method: str = _key("auto", "reduced model: galerkin (mixture only), interpolation (any), auto (galerkin "
                                "when the weighting is affine)", "str", choices=("auto", "galerkin", "interpolation"))
-    samples: int = _key(200, "parameter points solved in full to build the basis", "int", low=2)
+    samples: int = _key(ReductionSettings.samples, "parameter points solved in full to build the basis", "int",
+                        low=2)
     rank: int | None = _key(None, "basis size k; \"auto\" = smallest k whose lost energy is <= energy", "int?",
                             low=1)
     energy: float = _key(1e-10, "tolerance on the lost snapshot energy 1 - sum_{i<=k} s_i^2 / sum s_i^2", "float",
