@@ -113,6 +113,9 @@ def pod_basis(snapshots: np.ndarray, rank: int | None = None, energy: float | No
     return PodBasis(vectors, s, _lost(s, k))
 
 
+_INDEPENDENT = 1e-12  # relative singular value below which a direction is rounding noise (common practice)
+
+
 def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = None, energy: float | None = None,
                  max_rank: int | None = None) -> PodBasis:
     """Basis of the old snapshots plus new ones, from the old basis alone.
@@ -124,7 +127,9 @@ def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = No
     Args:
       basis: the current basis.
       new_vectors: (n, m_new) new snapshots.
-      rank, energy, max_rank: see :func:`choose_rank`; rank None keeps the energy rule.
+      rank, energy, max_rank: see :func:`choose_rank`; rank None keeps the energy rule, but
+        never drops a new direction that is numerically independent of the old basis
+        (so the new snapshots always lie in the span, up to the max_rank cap).
 
     Returns:
       The updated :class:`PodBasis` (its singular values are those of the stacked matrix).
@@ -134,7 +139,15 @@ def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = No
       decomposition", Linear Algebra Appl. 415, 2006.
     """
     k = basis.rank
-    stacked = np.hstack([basis.vectors * basis.singular_values[:k], np.atleast_2d(new_vectors.T).T])
+    added = np.atleast_2d(new_vectors.T).T
+    stacked = np.hstack([basis.vectors * basis.singular_values[:k], added])
     u, s, _ = np.linalg.svd(stacked, full_matrices=False)
     new_k = choose_rank(s, rank, energy, max_rank)
+    if rank is None:
+        # The energy rule measures a direction against all snapshots, and the part of a new
+        # snapshot the old basis misses can be tiny next to them: the rule would then drop
+        # exactly what enrichment was for. Keep every numerically independent new direction.
+        independent = int(np.sum(s > s[0] * _INDEPENDENT)) if s.size else 0
+        wanted = min(k + added.shape[1], independent)
+        new_k = max(new_k, wanted if max_rank is None else min(wanted, int(max_rank)))
     return PodBasis(np.ascontiguousarray(u[:, :new_k]), s, _lost(s, new_k))

@@ -310,6 +310,11 @@ def _record(config, dataset, problem, theta, rounds, timings, model, reused) -> 
     if weighting.coefficients is not None:
         record["mixture_weights"] = weighting.named(np.asarray(weighting.coefficients(np.asarray(theta))))
     if model is not None:
+        theta = np.asarray(theta, dtype=np.float64)
+        outside = (theta < weighting.lower) | (theta > weighting.upper)
+        # The basis was sampled inside the box: beyond it the reduced model extrapolates
+        # (the full check still judges the result, and enrichment adds snapshots there).
+        record["outside_sampled_box"] = [name for name, out in zip(weighting.param_names, outside) if out]
         record["model"] = {"method": model.method, "k": model.rank, "rows": model.info.get("rows", 0),
                            "edges_touched": model.info.get("edges_touched", 0), "reused": reused,
                            "fingerprint": problem.fingerprint(), "lost_energy": model.basis.lost_energy}
@@ -389,6 +394,9 @@ def summary_lines(result: FitResult) -> list[str]:
         if block:
             cells = "  ".join(_cell(block[name]["accuracy"]) for name in SPLITS)
             lines.append(f"  {label:<18}{cells}")
+    if record.get("outside_sampled_box"):
+        lines.append(f"note: {', '.join(record['outside_sampled_box'])} ended outside the box sampled offline, "
+                     "where the reduced model extrapolates; widen weighting.bound to sample there")
     check = record["check"]
     if "tau_topk" in check:
         lines.append(f"full check: {'passed' if check['passed'] else 'FAILED'} after {check['rounds']} round(s): "

@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from fitrank.cli import main
-from fitrank.pipeline import fit
+from fitrank.pipeline import fit, summary_lines
 from fitrank.metrics import pair_accuracy
 from fitrank.pagerank import PageRankProblem
 
@@ -72,6 +72,21 @@ def test_check_catches_a_too_small_basis_and_enrichment_repairs_it(tmp_path):
     # the certified bound held in every round
     for entry in rounds:
         assert entry["check"]["l1_error"] <= entry["check"]["certified_bound"] * (1 + 1e-9)
+
+
+def test_training_beyond_the_sampled_box_is_reported_and_enrichment_follows_it(tmp_path):
+    # A box far narrower than the truth: theta* lands outside, where the reduced model
+    # extrapolates. Enrichment (energy rule, no fixed rank) must follow theta* out until the
+    # check passes; the record and the summary name the parameters that left the box.
+    overrides = FAST + ["weighting.bound=0.05", "check.enrich_rounds=3"]
+    result = fit(_config(tmp_path, "scale"), overrides=overrides, write=False, progress=False, log=lambda m: None)
+    rounds = result.record["rounds"]
+    assert not rounds[0]["check"]["passed"]
+    assert result.record["check"]["passed"]
+    assert rounds[-1]["k"] > rounds[0]["k"]
+    outside = [name for name, value in result.record["params"].items() if abs(value) > 0.05]
+    assert outside and result.record["outside_sampled_box"] == outside
+    assert any("outside the box sampled offline" in line for line in summary_lines(result))
 
 
 def test_same_config_same_numbers(tmp_path):

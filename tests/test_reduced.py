@@ -184,6 +184,25 @@ def test_energy_rule_and_basis_extension():
     assert np.linalg.norm(residual) < 1e-10 * np.linalg.norm(new)
 
 
+def test_extend_basis_by_energy_keeps_a_new_direction_however_small():
+    # Enrichment adds a snapshot the basis misses; under the energy rule that missing part
+    # can carry far less than the energy tolerance of all snapshots together, and must
+    # still be kept, or enrichment changes nothing.
+    rng = np.random.default_rng(8)
+    old = rng.normal(size=(300, 40)) @ np.diag(np.logspace(0, -3, 40)) @ rng.normal(size=(40, 60))
+    basis = pod_basis(old, energy=1e-10)
+    inside = basis.vectors @ rng.normal(size=basis.rank)
+    outside = rng.normal(size=300)
+    outside -= basis.vectors @ (basis.vectors.T @ outside)
+    new = (inside + 1e-7 * np.linalg.norm(inside) * outside / np.linalg.norm(outside))[:, None]
+    grown = extend_basis(basis, new, energy=1e-10)
+    assert grown.rank == basis.rank + 1
+    residual = new - grown.vectors @ (grown.vectors.T @ new)
+    assert np.linalg.norm(residual) < 1e-12 * np.linalg.norm(new)
+    # a vector already in the span adds nothing
+    assert extend_basis(basis, inside[:, None], energy=1e-10).rank == basis.rank
+
+
 def test_enrichment_repairs_a_too_small_basis():
     problem = _problem("scale")
     small = build_reduced_model(problem, ReductionSettings(samples=8, rank=4, rows=12), progress=False)
