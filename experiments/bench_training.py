@@ -59,7 +59,7 @@ def step_times(result, repeats: int) -> dict:
             value, grad = reduced.value_and_grad(point, reduced.arrays)
             jax.block_until_ready(grad)
 
-    reduced_s = median_seconds(reduced_calls, 5) / len(points)
+    reduced_s = median_seconds(reduced_calls, 50) / len(points)  # 1,000 calls: this machine drifts by tens of %
     full, _ = full_objective(problem.graph, problem.weighting, train, spec, theta0=problem.weighting.theta0,
                              damping=problem.damping, teleport=problem.teleport, dangling=problem.dangling)
     full(points[0])  # warm start and compile, as after the first step of a run

@@ -3,12 +3,13 @@
     J(theta) = sum_q w_q loss(s_other(q) - s_preferred(q)) / sum_q w_q + lambda ||theta - theta0||^2,
     s = n * x(theta)
 
-The pair term is written once, :func:`pair_term`, as a JAX function of the
-PageRank values at the nodes the pairs touch. Three callers share it:
+The pair term is written once, :func:`margin_term`, as a JAX function of the
+pair margins; :func:`pair_term` feeds it margins gathered from the PageRank
+values at the nodes the pairs touch. Three callers share it:
 
-* :func:`reduced_objective`: x at those nodes comes from a reduced model's
-  :class:`Scorer`; J and its exact gradient are one jit-compiled JAX function
-  of theta whose cost never depends on n;
+* :func:`reduced_objective`: the margins come straight from a reduced model's
+  :class:`Scorer` (its ``differences``); J and its exact gradient are one
+  jit-compiled JAX function of theta whose cost never depends on n;
 * :func:`x_space_loss`: the pair term and its gradient with respect to a full
   (n,) vector x, for the full-space trainer (which turns dJ/dx into dJ/dtheta
   with the adjoint solve of :func:`fitrank.pagerank.adjoint_gradient`);
@@ -202,14 +203,27 @@ def pair_term(x_nodes, arrays: dict, loss_name: str):
 
     Returns:
       () sum_q w_q loss(n x_other - n x_preferred).
+    """
+    margins = arrays["scale"] * (x_nodes[arrays["other"]] - x_nodes[arrays["preferred"]])
+    return margin_term(margins, arrays, loss_name)
+
+
+def margin_term(margins, arrays: dict, loss_name: str):
+    """Weighted mean pair loss from the margins themselves.
+
+    Args:
+      margins: (Q,) z_q = s_other - s_preferred, scores s = n x.
+      arrays: holding ``weight`` (Q,) summing to 1 and ``loss_param``.
+      loss_name: registry name of the loss.
+
+    Returns:
+      () sum_q w_q loss(z_q).
 
     References:
       Burges et al., "Learning to rank using gradient descent", ICML 2005
       (a loss of the score difference of each preference pair, averaged).
     """
-    scores = arrays["scale"] * x_nodes
-    margin = scores[arrays["other"]] - scores[arrays["preferred"]]
-    return jnp.sum(arrays["weight"] * get_loss(loss_name).fn(margin, arrays["loss_param"]))
+    return jnp.sum(arrays["weight"] * get_loss(loss_name).fn(margins, arrays["loss_param"]))
 
 
 def penalty(theta, arrays: dict):
@@ -261,7 +275,7 @@ def reduced_objective(scorer, pairs: Pairs, spec: ObjectiveSpec, *, n: int, thet
 
     Args:
       scorer: a ``fitrank.reduced.Scorer`` (``fn(theta, arrays) -> (S,)``, ``arrays``,
-        ``nodes`` (S,)) whose nodes cover every node of ``pairs``.
+        ``nodes`` (S,), ``differences``) whose nodes cover every node of ``pairs``.
       pairs: the pairs of one split (usually ``dataset.pairs.subset("train")``).
       spec: loss and regularisation.
       n: number of graph nodes (scores are n * x).
@@ -269,23 +283,27 @@ def reduced_objective(scorer, pairs: Pairs, spec: ObjectiveSpec, *, n: int, thet
         calibrated from the scores at theta0 (see :func:`calibrate`).
 
     Returns:
-      The :class:`Objective`; its arrays hold the scorer's arrays under
-      ``"model"``, its ``spec`` the loss parameter actually used.
+      The :class:`Objective`; its arrays hold the arrays of the scorer's pair
+      margins under ``"model"``, its ``spec`` the loss parameter actually used.
     """
     loss, param = spec.resolve()
+    local = localize(pairs, scorer.nodes)
     if param is None:
         at_theta0 = _scores(jnp.asarray(theta0, dtype=jnp.float64), scorer.arrays, score_fn=scorer.fn)
-        spec = calibrate(spec, np.asarray(at_theta0), localize(pairs, scorer.nodes), n=n)
-    arrays = jax.device_put({"model": scorer.arrays, **_pair_arrays(pairs, scorer.nodes, spec, n),
+        spec = calibrate(spec, np.asarray(at_theta0), local, n=n)
+    # The margins n (x_other - x_preferred) straight from the model: a reduced scorer folds
+    # the differences into its readout rows, so no gather or scatter runs per step.
+    margins = scorer.differences(local.other, local.preferred, scale=float(n))
+    arrays = jax.device_put({"model": margins.arrays, **_pair_arrays(pairs, scorer.nodes, spec, n),
                              **_penalty_arrays(spec, theta0)})  # copied in once, not at every step
-    static = {"score_fn": scorer.fn, "loss_name": loss.name}
+    static = {"score_fn": margins.fn, "loss_name": loss.name}
     return Objective(functools.partial(_reduced_value, **static),
                      functools.partial(_reduced_value_and_grad, **static),
                      arrays, np.asarray(theta0, dtype=np.float64), spec)
 
 
 def _reduced_value(theta, arrays, score_fn, loss_name):
-    return pair_term(score_fn(theta, arrays["model"]), arrays, loss_name) + penalty(theta, arrays)
+    return margin_term(score_fn(theta, arrays["model"]), arrays, loss_name) + penalty(theta, arrays)
 
 
 # Module-level with the score function static: objectives rebuilt on the same model (or on
@@ -464,7 +482,7 @@ def full_accuracy(solves: FullSolves, pairs: Pairs) -> Callable[[np.ndarray], fl
 
 
 __all__ = [
-    "AUTO_FRACTION", "ObjectiveSpec", "calibrate", "Objective", "localize", "pair_term", "penalty", "batch_arrays", "reduced_objective",
+    "AUTO_FRACTION", "ObjectiveSpec", "calibrate", "Objective", "localize", "pair_term", "margin_term", "penalty", "batch_arrays", "reduced_objective",
     "reduced_accuracy", "XSpaceLoss", "x_space_loss", "pair_summary", "FullSolves", "full_objective",
     "full_accuracy",
 ]

@@ -98,7 +98,8 @@ class Scorer:
     Attributes:
       fn: ``fn(theta (p,), arrays) -> (S,)`` values x at ``nodes``; jit-able and
         differentiable. Pass ``arrays`` as an argument of the jitted function
-        (closed-over large arrays get constant-folded by XLA).
+        (closed-over large arrays get constant-folded by XLA). The values are
+        ``arrays["basis_nodes"] @ c(theta)``: linear in that readout (S, k).
       arrays: the pytree ``fn`` reads.
       nodes: (S,) node indices.
     """
@@ -106,6 +107,23 @@ class Scorer:
     fn: Callable
     arrays: dict
     nodes: np.ndarray
+
+    def differences(self, first, second, *, scale: float = 1.0) -> Scorer:
+        """A scorer of the Q differences scale * (x[nodes[first]] - x[nodes[second]]).
+
+        The values are linear in the readout rows, so the differences are taken
+        once, on the rows: evaluating them costs one (Q, k) product and no gather.
+
+        Args:
+          first, second: (Q,) positions into ``nodes``.
+          scale: factor of every difference (the objective's n).
+
+        Returns:
+          A :class:`Scorer` with the same ``fn`` and ``nodes`` whose values are (Q,).
+        """
+        rows = np.asarray(self.arrays["basis_nodes"])
+        readout = scale * (rows[np.asarray(first)] - rows[np.asarray(second)])
+        return Scorer(self.fn, {**self.arrays, "basis_nodes": jax.device_put(readout)}, self.nodes)
 
 
 @dataclass(frozen=True, eq=False)

@@ -28,6 +28,18 @@ class DenseScorer:
     arrays: dict
     nodes: np.ndarray
 
+    def differences(self, first, second, *, scale: float = 1.0) -> "DenseScorer":
+        """scale * (x[nodes[first]] - x[nodes[second]]), by gathering from the exact values."""
+        inner = self.fn
+
+        def fn(theta, arrays):
+            x = inner(theta, arrays["inner"])
+            return arrays["scale"] * (x[arrays["first"]] - x[arrays["second"]])
+
+        arrays = {"inner": self.arrays, "first": jnp.asarray(first), "second": jnp.asarray(second),
+                  "scale": jnp.asarray(float(scale))}
+        return DenseScorer(fn, arrays, self.nodes)
+
 
 def dense_scorer(graph: Graph, weighting: Weighting, nodes, *, damping: float = 0.85,
                  dangling: str = "teleport") -> DenseScorer:

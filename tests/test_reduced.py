@@ -265,3 +265,17 @@ def test_constrained_least_squares_matches_the_dense_kkt_solve_and_finite_differ
 
     fd = (reference(plus) - reference(minus)) / (2 * h)
     assert abs(float(grad[i, j]) - fd) <= 1e-6 * max(1.0, abs(fd))
+
+
+def test_scorer_differences_equal_differences_of_scores():
+    model = _model("scale", "interpolation")
+    problem = _problem("scale")
+    nodes = np.arange(0, problem.graph.n, 7)
+    scorer = model.scorer(nodes)
+    rng = np.random.default_rng(4)
+    first, second = rng.integers(0, nodes.size, 50), rng.integers(0, nodes.size, 50)
+    margins = scorer.differences(first, second, scale=3.0)
+    theta = jnp.asarray(problem.weighting.sample(3, seed=99)[2])
+    x = np.asarray(jax.jit(scorer.fn)(theta, scorer.arrays))
+    got = np.asarray(jax.jit(margins.fn)(theta, margins.arrays))
+    np.testing.assert_allclose(got, 3.0 * (x[first] - x[second]), rtol=1e-12, atol=1e-15)
