@@ -86,7 +86,8 @@ class GraphSection:
                          choices=("nodes", "uniform"))
     dangling: str = _key("teleport", "where mass leaking from a node without out-weight goes", "str",
                          choices=DANGLING_POLICIES)
-    solver_tol: float = _key(1e-10, "certified L1 error of every full PageRank solve", "float", low=0.0,
+    solver_tol: float = _key(1e-10, "certified L1 error of the full PageRank solves (check, full-space "
+                                    "training; snapshots: reduction.snapshot_tol)", "float", low=0.0,
                              low_open=True, high=1.0)
 
 
@@ -115,6 +116,8 @@ class ReductionSection:
                                      "0.25 for mixture and scale, 4 for features", "float?", low=0.0)
     edge_budget: int = _key(0, "most edges the interpolation rows may touch; 0 = no budget", "int", low=0)
     seed: int = _key(0, "seed of the parameter sampling", "int", low=0)
+    snapshot_tol: float = _key(ReductionSettings.snapshot_tol, "certified L1 error of each snapshot solve (the "
+                               "basis keeps less detail than this)", "float", low=0.0, low_open=True)
     workers: int = _key(1, "processes for the full solves of the offline stage", "int", low=1)
     model: Path | None = _key(None, "reduced-model file to reuse or create; \"\" = model.npz in the run folder",
                               "path?")

@@ -92,7 +92,7 @@ def reduction_settings(config: Config) -> ReductionSettings:
     return ReductionSettings(method=r.method, samples=r.samples, rank=r.rank, energy=r.energy,
                              max_rank=r.max_rank, rows=r.rows,
                              gamma=r.gamma, edge_budget=r.edge_budget or None, seed=r.seed,
-                             snapshot_tol=config.graph.solver_tol,
+                             snapshot_tol=r.snapshot_tol,
                              snapshot_path=str(r.snapshot_file) if r.snapshot_file else None)
 
 
