@@ -65,6 +65,7 @@ def galerkin_coefficients(w, arrays: dict):
 
     Pure JAX; differentiate through it with jax.grad (LU solve).
     """
-    operator = jnp.einsum("t,tkj->kj", w, arrays["terms"])
+    terms = arrays["terms"]
+    operator = (w @ terms.reshape(terms.shape[0], -1)).reshape(terms.shape[1:])  # one GEMV, not einsum's loops
     c = jnp.linalg.solve(operator, arrays["rhs"])
     return c / (arrays["sums"] @ c)

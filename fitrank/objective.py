@@ -175,22 +175,23 @@ def _require_pairs(pairs: Pairs) -> None:
         raise FitrankInputError("the objective needs at least one training pair; this split has none")
 
 
-def _pair_arrays(pairs: Pairs, nodes: np.ndarray, spec: ObjectiveSpec, n: int) -> dict:
-    """Arrays of the pair term: positions into ``nodes``, normalised weights, n and the loss parameter."""
+def _margin_arrays(pairs: Pairs, spec: ObjectiveSpec) -> dict:
+    """Arrays of :func:`margin_term`: normalised pair weights and the loss parameter."""
     _require_pairs(pairs)
     _, param = spec.resolve()
     if param is None:
         raise ValueError("the loss parameter is unset (\"auto\"): pass the spec an objective was built with "
                          "(Objective.spec, or TrainResult.extras['loss_param']) or call calibrate() first")
-    local = localize(pairs, nodes)
     weight = np.asarray(pairs.weight, dtype=np.float64)
-    return {
-        "preferred": jnp.asarray(local.preferred),
-        "other": jnp.asarray(local.other),
-        "weight": jnp.asarray(weight / weight.sum()),
-        "scale": jnp.asarray(float(n)),
-        "loss_param": jnp.asarray(param),
-    }
+    return {"weight": jnp.asarray(weight / weight.sum()), "loss_param": jnp.asarray(param)}
+
+
+def _pair_arrays(pairs: Pairs, nodes: np.ndarray, spec: ObjectiveSpec, n: int) -> dict:
+    """Arrays of :func:`pair_term`: those of the margins plus positions into ``nodes`` and n."""
+    arrays = _margin_arrays(pairs, spec)
+    local = localize(pairs, nodes)
+    return {**arrays, "preferred": jnp.asarray(local.preferred), "other": jnp.asarray(local.other),
+            "scale": jnp.asarray(float(n))}
 
 
 def pair_term(x_nodes, arrays: dict, loss_name: str):
@@ -294,11 +295,11 @@ def reduced_objective(scorer, pairs: Pairs, spec: ObjectiveSpec, *, n: int, thet
     # The margins n (x_other - x_preferred) straight from the model: a reduced scorer folds
     # the differences into its readout rows, so no gather or scatter runs per step.
     margins = scorer.differences(local.other, local.preferred, scale=float(n))
-    arrays = jax.device_put({"model": margins.arrays, **_pair_arrays(pairs, scorer.nodes, spec, n),
+    arrays = jax.device_put({"model": margins.arrays, **_margin_arrays(pairs, spec),
                              **_penalty_arrays(spec, theta0)})  # copied in once, not at every step
     static = {"score_fn": margins.fn, "loss_name": loss.name}
     return Objective(functools.partial(_reduced_value, **static),
-                     functools.partial(_reduced_value_and_grad, **static),
+                     _reduced_value_and_grad(**static),
                      arrays, np.asarray(theta0, dtype=np.float64), spec)
 
 
@@ -306,9 +307,12 @@ def _reduced_value(theta, arrays, score_fn, loss_name):
     return margin_term(score_fn(theta, arrays["model"]), arrays, loss_name) + penalty(theta, arrays)
 
 
-# Module-level with the score function static: objectives rebuilt on the same model (or on
-# models whose scorers share a function) reuse one compiled program per array shape.
-_reduced_value_and_grad = jax.jit(jax.value_and_grad(_reduced_value), static_argnames=("score_fn", "loss_name"))
+@functools.lru_cache(maxsize=32)
+def _reduced_value_and_grad(score_fn, loss_name):
+    """One jitted value-and-gradient per (score function, loss): objectives rebuilt on the same
+    scorer function reuse its compiled program, and calls pass only arrays (jit's fast path;
+    static keyword arguments at every call cost about 20 us, a tenth of a Galerkin step)."""
+    return jax.jit(jax.value_and_grad(functools.partial(_reduced_value, score_fn=score_fn, loss_name=loss_name)))
 _scores = jax.jit(lambda theta, arrays, score_fn: score_fn(theta, arrays), static_argnames=("score_fn",))
 
 
