@@ -147,7 +147,6 @@ def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = No
         # The energy rule measures a direction against all snapshots, and the part of a new
         # snapshot the old basis misses can be tiny next to them: the rule would then drop
         # exactly what enrichment was for. Keep every numerically independent new direction.
-        independent = int(np.sum(s > s[0] * _INDEPENDENT)) if s.size else 0
-        wanted = min(k + added.shape[1], independent)
-        new_k = max(new_k, wanted if max_rank is None else min(wanted, int(max_rank)))
+        independent = int(np.sum(s > s[0] * _INDEPENDENT))
+        new_k = max(new_k, choose_rank(s, min(k + added.shape[1], independent), max_rank=max_rank))
     return PodBasis(np.ascontiguousarray(u[:, :new_k]), s, _lost(s, new_k))

@@ -46,6 +46,7 @@ AUTO = "auto"
 """The value of an optional number that fitrank chooses itself (rendered and accepted as ``"auto"``)."""
 
 _LOOP = LoopSettings()
+_REDUCTION = ReductionSettings()
 
 
 def _key(default, doc: str, kind: str, *, choices: tuple | None = None, low: float | None = None,
@@ -101,22 +102,22 @@ class WeightingSection:
 
 @dataclass(frozen=True)
 class ReductionSection:
-    method: str = _key("auto", "reduced model: galerkin (mixture only), interpolation (any), auto (galerkin "
-                               "when the weighting is affine)", "str", choices=("auto", "galerkin", "interpolation"))
-    samples: int = _key(ReductionSettings.samples, "parameter points solved in full to build the basis", "int",
-                        low=2)
+    method: str = _key(_REDUCTION.method, "reduced model: galerkin (mixture only), interpolation (any), auto "
+                                          "(galerkin when the weighting is affine)", "str",
+                       choices=("auto", "galerkin", "interpolation"))
+    samples: int = _key(_REDUCTION.samples, "parameter points solved in full to build the basis", "int", low=2)
     rank: int | None = _key(None, "basis size k; \"auto\" = smallest k whose lost energy is <= energy", "int?",
                             low=1)
-    energy: float = _key(1e-10, "tolerance on the lost snapshot energy 1 - sum_{i<=k} s_i^2 / sum s_i^2", "float",
-                         low=0.0, high=1.0, low_open=True, high_open=True)
-    max_rank: int = _key(100, "largest basis size the energy rule may choose", "int", low=1)
+    energy: float = _key(_REDUCTION.energy, "tolerance on the lost snapshot energy 1 - sum_{i<=k} s_i^2 / "
+                                            "sum s_i^2", "float", low=0.0, high=1.0, low_open=True, high_open=True)
+    max_rank: int = _key(_REDUCTION.max_rank, "largest basis size the energy rule may choose", "int", low=1)
     rows: int | None = _key(None, "interpolation rows r (>= k); \"auto\" = 2 k", "int?", low=1)
     gamma: float | None = _key(None, "cost weight of row choice: score = remaining norm / (1 + gamma * edges "
                                      "needed / mean edges needed); 0 = pure pivoted QR (favours hubs); \"auto\" = "
                                      "0.25 for mixture and scale, 4 for features", "float?", low=0.0)
     edge_budget: int = _key(0, "most edges the interpolation rows may touch; 0 = no budget", "int", low=0)
-    seed: int = _key(0, "seed of the parameter sampling", "int", low=0)
-    snapshot_tol: float = _key(ReductionSettings.snapshot_tol, "certified L1 error of each snapshot solve (the "
+    seed: int = _key(_REDUCTION.seed, "seed of the parameter sampling", "int", low=0)
+    snapshot_tol: float = _key(_REDUCTION.snapshot_tol, "certified L1 error of each snapshot solve (the "
                                "basis keeps less detail than this)", "float", low=0.0, low_open=True)
     workers: int = _key(1, "processes for the full solves of the offline stage", "int", low=1)
     model: Path | None = _key(None, "reduced-model file to reuse or create; \"\" = model.npz in the run folder",

@@ -7,9 +7,11 @@ normalisation as an exact constraint,
 
 Forming (M(theta) U)_I needs only the in-edges of I (and, without a
 closed-form out-weight, the out-edges of their sources): the *local subgraph*,
-extracted once offline. The small constrained problem is solved through its
-equilibrated KKT system by LU, which JAX differentiates safely (an SVD-based
-least-squares solve has fragile gradients at repeated singular values).
+extracted once offline. The small constrained problem is solved by one
+Cholesky factorisation of its equilibrated normal matrix and the Schur
+complement of the constraint (:func:`constrained_least_squares`), which JAX
+differentiates safely (an SVD-based least-squares solve has fragile gradients
+at repeated singular values).
 
 Rows are picked by greedy pivoted QR on the rows of Z = [M(theta_1) U, ...,
 M(theta_q) U] (the Businger-Golub pivoting behind DEIM). The cost-aware variant

@@ -313,6 +313,8 @@ def _reduced_value_and_grad(score_fn, loss_name):
     scorer function reuse its compiled program, and calls pass only arrays (jit's fast path;
     static keyword arguments at every call cost about 20 us, a tenth of a Galerkin step)."""
     return jax.jit(jax.value_and_grad(functools.partial(_reduced_value, score_fn=score_fn, loss_name=loss_name)))
+
+
 _scores = jax.jit(lambda theta, arrays, score_fn: score_fn(theta, arrays), static_argnames=("score_fn",))
 
 

@@ -11,9 +11,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from fitrank.atomic import staged_file
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.figure import Figure
+
+from fitrank.atomic import staged_file
 
 _MAIN_COLOUR = "#1f4e79"
 _ACCENT_COLOUR = "#c05a00"
