@@ -13,7 +13,10 @@ every solve here and by :func:`certified_bound` for approximations made elsewher
 
 Solvers: power iteration (the fixed point x <- alpha A x + (1 - alpha) v; its
 update is exactly minus the residual, so the stopping test costs nothing),
-BiCGSTAB on M x = b (fewer mat-vecs at damping close to 1) and Anderson
+Gauss-Seidel sweeps over random classes of nodes (:mod:`fitrank.sweeps`: one
+pass over the edges per sweep like a power step, about 0.6 times as many
+sweeps on fast-mixing graphs, certified by a residual bound the sweep computes
+anyway), BiCGSTAB on M x = b (fewer mat-vecs at damping close to 1) and Anderson
 acceleration of the power map (one mat-vec per step, like power iteration, and
 fewer of them when a few slow eigen-directions stand out of the spectrum; its
 least squares costs about 3 x window vector operations per step, which on
@@ -34,7 +37,6 @@ from __future__ import annotations
 import hashlib
 import json
 import time
-import weakref
 from dataclasses import dataclass, field, replace
 from typing import Callable
 
@@ -46,10 +48,11 @@ import scipy.sparse.linalg as spla
 
 from fitrank.errors import ConvergenceError, FitrankInputError
 from fitrank.graph import Graph
+from fitrank.sweeps import SweepPlan, gauss_seidel
 from fitrank.weightings import Weighting
 
 DANGLING_POLICIES = ("teleport", "self")
-METHODS = ("auto", "power", "bicgstab", "anderson")
+METHODS = ("auto", "power", "gauss-seidel", "bicgstab", "anderson")
 
 
 @dataclass(frozen=True)
@@ -93,6 +96,10 @@ class WalkOperator:
       damping: alpha in (0, 1).
       dangling: ``"teleport"`` (leaked mass follows v) or ``"self"`` (it stays).
       transition: (E,) the edge probabilities behind ``matrix``.
+      sweep_plan: zero-argument callable returning the graph's
+        :class:`~fitrank.sweeps.SweepPlan` (built on first use, cached on the
+        graph); None when the operator was assembled without its graph, which
+        rules out Gauss-Seidel sweeps.
     """
 
     matrix: sp.csr_matrix
@@ -101,6 +108,7 @@ class WalkOperator:
     damping: float
     dangling: str
     transition: np.ndarray
+    sweep_plan: Callable[[], SweepPlan] | None = None
     _cache: dict = field(default_factory=dict, repr=False)
 
     @property
@@ -148,15 +156,6 @@ class WalkOperator:
     def residual(self, y: np.ndarray) -> np.ndarray:
         """(n,) r = M y - (1 - alpha) v."""
         return self.apply(y) - self.rhs()
-
-
-_JITTED: "weakref.WeakKeyDictionary[Callable, Callable]" = weakref.WeakKeyDictionary()
-
-
-def _jitted(fn: Callable) -> Callable:
-    if fn not in _JITTED:
-        _JITTED[fn] = jax.jit(fn)
-    return _JITTED[fn]
 
 
 def check_teleport(teleport, n: int) -> np.ndarray:
@@ -214,15 +213,16 @@ def walk_operator(
       The operator; building it costs one evaluation of the weighting on all edges.
     """
     check_walk_settings(damping, dangling)
-    theta = jnp.asarray(theta, dtype=jnp.float64)
+    theta = np.asarray(theta, dtype=np.float64)
     if theta.shape != (weighting.num_params,):
         raise FitrankInputError(
             f"theta has shape {theta.shape}; the {weighting.kind} weighting has {weighting.num_params} parameters"
         )
     v = check_teleport(graph.teleport if teleport is None else teleport, graph.n)
-    p = np.asarray(_jitted(weighting.transition)(theta, weighting.tables), dtype=np.float64)
-    leak = weighting.leak_basis @ np.asarray(weighting.leak_coefficients(theta), dtype=np.float64)
-    return WalkOperator(graph.matrix(p), leak, v, float(damping), dangling, p)
+    # NumPy, not JAX: the same formula, and a single solve pays no compile (0.2 s at 1M edges)
+    p = np.asarray(weighting.transition(theta, weighting.tables, xp=np), dtype=np.float64)
+    leak = weighting.leak_basis @ np.asarray(weighting.leak_coefficients(theta, xp=np), dtype=np.float64)
+    return WalkOperator(graph.matrix(p), leak, v, float(damping), dangling, p, graph.sweep_plan)
 
 
 # ----------------------------------------------------------------------------- solvers
@@ -303,7 +303,7 @@ def _anderson(step: Callable, b: np.ndarray, x0: np.ndarray, alpha: float, norm:
       alpha: damping, for the bound ||z - z*|| <= ||r|| / (1 - alpha).
       norm: the residual norm (L1 or max).
       tol: stop when ||r|| <= tol ||b||.
-      maxiter: at most this many mat-vecs.
+      maxiter: at most this many mat-vecs (a Gauss-Seidel sweep counts as one: one pass over the edges).
       callback: None or called as callback(mat-vecs, residual).
       window: how many differences the least squares keeps.
 
@@ -358,19 +358,29 @@ def _small_least_squares(gram: np.ndarray, rhs: np.ndarray) -> np.ndarray:
 
 _PROBE_STEPS = 8
 _SLOW_RATE = 0.6
+_SWEEPS_PAY_OFF = 16
+"""Power steps still needed after the probe above which "auto" switches to Gauss-Seidel sweeps.
+Measured on the generated 1M-edge graph (experiments/bench_full_solver.py): a sweep costs about
+1.2 power steps and setting the sweeps up about 2-5 more (5 when the graph's plan is first built),
+and sweeps need about 0.6 times the steps, so they pay off from about 16 remaining steps."""
 
 
-def _solve(method: str, damping: float, step, apply, b, x0, norm, tol, maxiter, callback):
+def _solve(method: str, damping: float, step, apply, b, x0, norm, tol, maxiter, callback, sweeps=None):
+    """Run ``method`` on M z = b; ``sweeps(x0, tol, maxiter, callback)`` runs Gauss-Seidel (None: unavailable)."""
     if method not in METHODS:
         raise FitrankInputError(f"solver method must be one of {METHODS}, got '{method}'")
+    if method == "gauss-seidel" and sweeps is None:
+        raise FitrankInputError("solver method 'gauss-seidel' needs the graph's sweep plan: assemble the operator "
+                                "with walk_operator (it is not available for the adjoint solve); use 'auto' or 'power'")
     start = time.perf_counter()
     its, used = 0, method
     if method == "auto":
         # Power iteration contracts by the walk's own mixing rate (at most alpha) per
-        # mat-vec; on a fast-mixing graph nothing beats it, on a slow one a Krylov
-        # method needs far fewer mat-vecs. Probe a few steps, measure, then choose.
-        # (Threshold: measured in experiments/bench_full_solver.py; common practice
-        # otherwise only says "Krylov when damping is close to 1".)
+        # mat-vec. On a fast-mixing graph Gauss-Seidel sweeps (same cost, one pass over
+        # the edges) contract faster still; on a slow one a Krylov method needs far
+        # fewer mat-vecs. Probe a few steps, measure, then choose. (Threshold: measured
+        # in experiments/bench_full_solver.py; common practice otherwise only says
+        # "Krylov when damping is close to 1".)
         history = []
 
         def probe_callback(it, residual):
@@ -382,17 +392,25 @@ def _solve(method: str, damping: float, step, apply, b, x0, norm, tol, maxiter, 
         if ok or its >= maxiter:
             return z, SolveReport(ok, its, float(res), float(bound), "power", time.perf_counter() - start)
         rate = (history[-1] / history[-5]) ** 0.25 if len(history) >= 5 and history[-5] > 0 else 1.0
-        x0, used = z, ("power" if rate <= _SLOW_RATE else "bicgstab")
+        x0 = z
+        if rate > _SLOW_RATE:
+            used = "bicgstab"
+        else:
+            remaining = np.log(tol * norm(b) / res) / np.log(max(rate, 1e-3))
+            used = "gauss-seidel" if sweeps is not None and remaining > _SWEEPS_PAY_OFF else "power"
     if used == "power":
         z, more, res, bound, ok = _power(step, b, x0, damping, norm, tol, maxiter - its, callback)
     elif used == "anderson":
         z, more, res, bound, ok = _anderson(step, b, x0, damping, norm, tol, maxiter - its, callback)
     else:
-        z, more, res, bound, ok = _bicgstab(apply, b, x0, damping, norm, tol, maxiter - its, callback)
-        if not ok and its + more < maxiter:  # breakdown: finish with the always-convergent iteration
+        if used == "gauss-seidel":
+            z, more, res, bound, ok = sweeps(x0, tol, maxiter - its, callback)
+        else:
+            z, more, res, bound, ok = _bicgstab(apply, b, x0, damping, norm, tol, maxiter - its, callback)
+        if not ok and its + more < maxiter:  # breakdown or stall: finish with the always-convergent iteration
             its += more
             z, more, res, bound, ok = _power(step, b, z, damping, norm, tol, maxiter - its, callback)
-            used = "bicgstab+power"
+            used = f"{used}+power"
     its += more
     if method == "auto":
         used = "power" if used == "power" else f"power+{used}"
@@ -412,8 +430,13 @@ def solve_operator(op: WalkOperator, *, tol: float = 1e-10, maxiter: int = 10_00
     """Solve M x = (1 - alpha) v for an assembled operator. See :func:`pagerank`."""
     b = op.rhs()
     x0 = op.teleport.copy() if x0 is None else np.asarray(x0, dtype=np.float64) / np.sum(x0)
+    sweeps = None
+    if op.sweep_plan is not None:
+        def sweeps(start, tol_, maxiter_, callback_):
+            return gauss_seidel(op.sweep_plan(), op.transition, op.leak, op.teleport, op.damping, op.dangling,
+                                start, tol_, maxiter_, callback_)
     x, report = _solve(method, op.damping, lambda z: op.damping * op.walk(z), op.apply, b, x0, _l1, tol,
-                       maxiter, callback)
+                       maxiter, callback, sweeps)
     if not report.converged and raise_on_failure:
         raise ConvergenceError("PageRank solve", report.iterations, report.residual, report.bound, tol)
     return _normalised(x, report, op.damping)
@@ -468,10 +491,11 @@ def pagerank(
       dangling: where leaked mass goes: ``"teleport"`` (follows v) or ``"self"``.
       tol: stop when the certified L1 error ||x - x_true||_1 is at most ``tol``
         (checked as ||r||_1 <= tol (1 - alpha)).
-      maxiter: at most this many mat-vecs.
-      method: ``"power"``, ``"bicgstab"``, ``"anderson"`` (Anderson-accelerated power
-        iteration) or ``"auto"`` (power iteration, switching to BiCGSTAB when the
-        first steps show slow contraction).
+      maxiter: at most this many mat-vecs (a Gauss-Seidel sweep counts as one: one pass over the edges).
+      method: ``"power"``, ``"gauss-seidel"`` (normalised sweeps, :mod:`fitrank.sweeps`),
+        ``"bicgstab"``, ``"anderson"`` (Anderson-accelerated power iteration) or
+        ``"auto"``: 8 power steps, then BiCGSTAB when they show slow contraction,
+        Gauss-Seidel sweeps when more than 16 power steps would remain, else power.
       x0: (n,) starting vector (warm start), default v.
       callback: called as ``callback(iteration, residual)`` after each check.
 

@@ -61,8 +61,10 @@ class Weighting:
         few per-node sums, so a row of P needs only that row's in-edges.
       tables: dict of arrays that :attr:`transition` reads for the full graph.
       leak_basis: (n, L) float64 0/1 matrix Z with leak = Z @ leak_coefficients(theta).
-      transition: ``(theta (p,), tables) -> p (E_sub,)``, pure and differentiable in JAX.
-      leak_coefficients: ``theta (p,) -> c (L,)``, pure JAX.
+      transition: ``(theta (p,), tables, xp=jax.numpy) -> p (E_sub,)``, pure and
+        differentiable in JAX; with ``xp=numpy`` the same formula in NumPy (a
+        single full solve then needs no JAX compile).
+      leak_coefficients: ``(theta (p,), xp=jax.numpy) -> c (L,)``, likewise.
       coefficients: ``theta (p,) -> w (K,)`` the affine coefficients
         (mixture: softmax(theta)); None when not affine.
       local_tables: ``edge_ids (E_sub,) -> tables`` restricted to those edges
@@ -175,7 +177,7 @@ def relation_mixture(graph: Graph) -> Weighting:
         tables=local_tables(np.arange(graph.num_edges)),
         leak_basis=lacks,
         transition=_mixture_transition,
-        leak_coefficients=jax.nn.softmax,
+        leak_coefficients=_softmax,
         coefficients=jax.nn.softmax,
         local_tables=local_tables,
     )
@@ -250,8 +252,8 @@ def _dangling_basis(graph: Graph) -> np.ndarray:
     return (graph.out_degree() == 0).astype(np.float64)[:, None]
 
 
-def _one_coefficient(theta):
-    return jnp.ones(1, dtype=theta.dtype)
+def _one_coefficient(theta, xp=jnp):
+    return xp.ones(1, dtype=theta.dtype)
 
 
 # --------------------------------------------------------------------------- features
@@ -320,26 +322,48 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
 
 
 # Transitions are module-level functions of (theta, tables) only, so one jit-compiled
-# program serves every weighting of the same kind and table shapes.
+# program serves every weighting of the same kind and table shapes. Each is one formula
+# for two array modules: JAX (jit, gradients) and NumPy (a single full solve, where a
+# first JAX compile would cost more than the whole evaluation); only the steps JAX
+# spells differently branch on ``xp``.
 
 
-def _mixture_transition(theta, tables):
-    return jax.nn.softmax(theta)[tables["rel"]] * tables["unit"]
+def _softmax(theta, xp=jnp):
+    if xp is jnp:
+        return jax.nn.softmax(theta)
+    shifted = np.exp(theta - theta.max())
+    return shifted / shifted.sum()
 
 
-def _scale_transition(theta, tables):
-    scale = jnp.exp(theta - jax.lax.stop_gradient(jnp.max(theta)))
+def _constant(value, xp):
+    """value, held constant under differentiation (the shift that keeps exp from overflowing)."""
+    return jax.lax.stop_gradient(value) if xp is jnp else value
+
+
+def _mixture_transition(theta, tables, xp=jnp):
+    return _softmax(theta, xp)[tables["rel"]] * tables["unit"]
+
+
+def _scale_transition(theta, tables, xp=jnp):
+    scale = xp.exp(theta - _constant(xp.max(theta), xp))
     out = tables["out_weight"] @ scale
     return tables["base"] * scale[tables["rel"]] / out[tables["slot"]]
 
 
-def _feature_transition(theta, tables):
+def _feature_transition(theta, tables, xp=jnp):
     score = tables["log_base"] + tables["feat"] @ theta
-    num = tables["slots"].shape[0]
-    peak = jax.lax.stop_gradient(jax.ops.segment_max(score, tables["slot"], num_segments=num))
-    shifted = jnp.exp(score - peak[tables["slot"]])
-    total = jax.ops.segment_sum(shifted, tables["slot"], num_segments=num)
-    p_out = shifted / total[tables["slot"]]
+    slot, num = tables["slot"], tables["slots"].shape[0]
+    if xp is jnp:
+        peak = jax.ops.segment_max(score, slot, num_segments=num)
+    else:
+        peak = np.full(num, -np.inf)
+        np.maximum.at(peak, slot, score)
+    shifted = xp.exp(score - _constant(peak, xp)[slot])
+    if xp is jnp:
+        total = jax.ops.segment_sum(shifted, slot, num_segments=num)
+    else:
+        total = np.bincount(slot, weights=shifted, minlength=num)
+    p_out = shifted / total[slot]
     target = tables.get("target")
     return p_out if target is None else p_out[target]
 

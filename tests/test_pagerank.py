@@ -12,6 +12,7 @@ References used below:
 from __future__ import annotations
 
 from fractions import Fraction
+from dataclasses import replace
 
 import networkx as nx
 import numpy as np
@@ -36,7 +37,8 @@ from fitrank.pagerank import (
 )
 from fitrank.weightings import KINDS, make_weighting
 
-SOLVERS = ("power", "bicgstab", "anderson")
+SOLVERS = ("power", "gauss-seidel", "bicgstab", "anderson")
+MATRIX_SOLVERS = ("power", "bicgstab", "anderson")  # those that call op.matrix once per counted mat-vec
 
 
 # ----------------------------------------------------------------------------- independent references
@@ -316,6 +318,61 @@ def test_anderson_spends_fewer_mat_vecs_than_power_on_a_generated_graph():
     assert counts["anderson", 0.99] < counts["power", 0.99]
 
 
+def test_gauss_seidel_spends_fewer_passes_than_power_on_a_generated_graph():
+    # Gauss-Seidel converges at least as fast as the Jacobi/power splitting for a regular splitting
+    # of an M-matrix (Stein-Rosenberg; Saad, "Iterative Methods for Sparse Linear Systems", 2003,
+    # section 4.2), and on PageRank in markedly fewer passes (Arasu et al., WWW 2002). On the suite's
+    # shared generated "scale" dataset, tolerance 1e-8: fewer passes over the edges than power
+    # iteration at both dampings, each result certified by an independent residual.
+    graph = generated("scale")[0].graph
+    weighting = make_weighting("scale", graph)
+    for alpha in (0.85, 0.99):
+        op = walk_operator(graph, weighting, weighting.theta0, damping=alpha)
+        counts = {}
+        for method in ("power", "gauss-seidel"):
+            result = solve_operator(op, method=method, tol=1e-8)
+            assert certified_bound(op, result.x) <= 1e-8
+            assert result.report.bound <= 1e-8
+            counts[method] = result.report.iterations
+        assert counts["gauss-seidel"] < counts["power"], (alpha, counts)
+
+
+def test_gauss_seidel_counts_one_pass_per_sweep(small):
+    graph, weighting = small
+    op = walk_operator(graph, weighting, weighting.theta0, damping=0.99)
+    sweeps = []
+    result = solve_operator(op, method="gauss-seidel", tol=1e-15, maxiter=5, raise_on_failure=False,
+                            callback=lambda it, residual: sweeps.append(residual))
+    assert len(sweeps) == result.report.iterations == 5
+    # each reported residual bounds the true residual of the vector it describes
+    assert result.report.residual >= certified_bound(op, result.x) * (1 - op.damping) * (1 - 1e-9)
+
+
+def test_sweep_plan_regroups_the_edge_pattern():
+    # The plan's regrouped CSR must be P with rows and columns both permuted by its node order,
+    # compared with scipy's own fancy indexing; classes are contiguous ranges of positions.
+    graph = random_typed_graph(40, n=60, num_relations=3)
+    plan = graph.sweep_plan()
+    assert np.array_equal(np.sort(plan.order), np.arange(graph.n))
+    p = np.random.default_rng(40).random(graph.num_edges)
+    expected = graph.matrix(p)[plan.order][:, plan.order].toarray()
+    regrouped = sp.csr_matrix((p[plan.edges], plan.columns, plan.indptr), shape=(graph.n, graph.n)).toarray()
+    np.testing.assert_allclose(regrouped, expected, rtol=0, atol=1e-15)
+    assert plan.bounds[0] == 0 and plan.bounds[-1] == graph.n and np.all(np.diff(plan.bounds) >= 0)
+
+
+def test_gauss_seidel_needs_the_graph(small):
+    graph, weighting = small
+    op = walk_operator(graph, weighting, weighting.theta0)
+    bare = replace(op, sweep_plan=None)  # e.g. assembled by hand from a matrix
+    with pytest.raises(FitrankInputError, match="'gauss-seidel' needs the graph's sweep plan"):
+        solve_operator(bare, method="gauss-seidel")
+    np.testing.assert_allclose(solve_operator(bare, tol=1e-12).x, solve_operator(op, tol=1e-12).x, atol=1e-11)
+    x = solve_operator(op, tol=1e-12).x
+    with pytest.raises(FitrankInputError, match="not available for the adjoint solve"):
+        adjoint_gradient(graph, weighting, weighting.theta0, x, np.ones(graph.n), op=op, method="gauss-seidel")
+
+
 # ----------------------------------------------------------------------------- properties
 
 
@@ -457,7 +514,7 @@ def test_non_convergence_reports_iterations_residual_and_bound(small, method):
     assert err.bound >= 0.99 * err.residual / (1 - 0.99) * (1 - 1e-12)
 
 
-@pytest.mark.parametrize("method", SOLVERS)
+@pytest.mark.parametrize("method", MATRIX_SOLVERS)
 @pytest.mark.parametrize("maxiter", [3, 4, 8])
 def test_maxiter_bounds_the_mat_vecs(small, method, maxiter):
     # pagerank's docstring: "maxiter: at most this many mat-vecs"; counted here independently.

@@ -11,6 +11,7 @@ tests/test_pagerank.py imports the helpers defined here (``random_typed_graph``,
 from __future__ import annotations
 
 import jax
+import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -221,6 +222,26 @@ def test_transition_columns_sum_to_one_minus_leak(seed, shape, kind, spread):
     dangling = graph.out_degree() == 0
     np.testing.assert_array_equal(column_sums[dangling], 0.0)
     np.testing.assert_allclose(leak[dangling], 1.0, atol=1e-15)
+
+
+@examples(0.5)
+@given(seed=seeds, shape=shapes, kind=st.sampled_from(KINDS), spread=st.sampled_from([0.5, 3.0, 30.0]))
+def test_numpy_evaluation_is_the_jax_one(seed, shape, kind, spread):
+    # walk_operator evaluates a weighting in NumPy (no compile); training differentiates it in JAX.
+    # One formula, two array modules: they must agree to rounding, for the full and local tables.
+    graph = random_typed_graph(seed, *shape)
+    weighting = make_weighting(kind, graph)
+    theta = np.asarray(random_theta(weighting, seed, spread), dtype=np.float64)
+    with_jax = np.asarray(jax.jit(weighting.transition)(theta, weighting.tables))
+    with_numpy = weighting.transition(theta, weighting.tables, xp=np)
+    assert isinstance(with_numpy, np.ndarray)
+    np.testing.assert_allclose(with_numpy, with_jax, rtol=1e-13, atol=1e-300)
+    np.testing.assert_allclose(weighting.leak_coefficients(theta, xp=np),
+                               np.asarray(weighting.leak_coefficients(jnp.asarray(theta))), rtol=1e-14)
+    edge_ids = np.arange(0, graph.num_edges, 2)
+    local = weighting.local_tables(edge_ids)
+    np.testing.assert_allclose(weighting.transition(theta, local, xp=np),
+                               np.asarray(weighting.transition(theta, local)), rtol=1e-13, atol=1e-300)
 
 
 @examples(0.5)
