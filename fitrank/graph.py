@@ -21,8 +21,6 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
-from fitrank.sweeps import SweepPlan, sweep_plan
-
 SPLITS = ("train", "valid", "test")
 """Split names; :attr:`Pairs.split` stores their positions in this tuple."""
 
@@ -120,12 +118,6 @@ class Graph:
         mat = sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n), copy=False)
         mat.has_sorted_indices = True
         return mat
-
-    def sweep_plan(self) -> SweepPlan:
-        """The edge pattern regrouped for Gauss-Seidel sweeps (:mod:`fitrank.sweeps`); built once per graph."""
-        if "sweep_plan" not in self._cache:
-            self._cache["sweep_plan"] = sweep_plan(self.indptr, self.src)
-        return self._cache["sweep_plan"]
 
     def fingerprint(self) -> str:
         """A short hash of everything that defines the graph (structure, weights,

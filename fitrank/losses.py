@@ -42,10 +42,15 @@ def sigmoid_loss(z, temperature):
     return jax.nn.sigmoid(z / temperature)
 
 
+def _softplus_from(z, decay):
+    """log(1 + exp(z)) = max(z, 0) + log1p(exp(-|z|)) given decay = exp(-|z|): no overflow,
+    full precision for z << 0."""
+    return jnp.maximum(z, 0.0) + jnp.log1p(decay)
+
+
 @jax.custom_jvp
 def _softplus(z):
-    """log(1 + exp(z)) = max(z, 0) + log1p(exp(-|z|)): no overflow, full precision for z << 0."""
-    return jnp.maximum(z, 0.0) + jnp.log1p(jnp.exp(-jnp.abs(z)))
+    return _softplus_from(z, jnp.exp(-jnp.abs(z)))
 
 
 @_softplus.defjvp
@@ -55,7 +60,7 @@ def _softplus_jvp(primals, tangents):
     # (measured: a third less time for objective + gradient over 2,800 pairs).
     (z,), (dz,) = primals, tangents
     decay = jnp.exp(-jnp.abs(z))
-    value = jnp.maximum(z, 0.0) + jnp.log1p(decay)
+    value = _softplus_from(z, decay)
     slope = jnp.where(z >= 0, 1.0, decay) / (1.0 + decay)
     return value, slope * dz
 

@@ -34,6 +34,7 @@ References:
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import time
@@ -48,7 +49,7 @@ import scipy.sparse.linalg as spla
 
 from fitrank.errors import ConvergenceError, FitrankInputError
 from fitrank.graph import Graph
-from fitrank.sweeps import SweepPlan, gauss_seidel
+from fitrank.sweeps import SweepPlan, cached_sweep_plan, gauss_seidel
 from fitrank.weightings import Weighting
 
 DANGLING_POLICIES = ("teleport", "self")
@@ -222,7 +223,8 @@ def walk_operator(
     # NumPy, not JAX: the same formula, and a single solve pays no compile (0.2 s at 1M edges)
     p = np.asarray(weighting.transition(theta, weighting.tables, xp=np), dtype=np.float64)
     leak = weighting.leak_basis @ np.asarray(weighting.leak_coefficients(theta, xp=np), dtype=np.float64)
-    return WalkOperator(graph.matrix(p), leak, v, float(damping), dangling, p, graph.sweep_plan)
+    return WalkOperator(graph.matrix(p), leak, v, float(damping), dangling, p,
+                        functools.partial(cached_sweep_plan, graph))
 
 
 # ----------------------------------------------------------------------------- solvers
@@ -303,7 +305,7 @@ def _anderson(step: Callable, b: np.ndarray, x0: np.ndarray, alpha: float, norm:
       alpha: damping, for the bound ||z - z*|| <= ||r|| / (1 - alpha).
       norm: the residual norm (L1 or max).
       tol: stop when ||r|| <= tol ||b||.
-      maxiter: at most this many mat-vecs (a Gauss-Seidel sweep counts as one: one pass over the edges).
+      maxiter: at most this many mat-vecs.
       callback: None or called as callback(mat-vecs, residual).
       window: how many differences the least squares keeps.
 

@@ -37,10 +37,13 @@ References:
 
 from __future__ import annotations
 
+import weakref
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
+
+from fitrank.graph import Graph
 
 CLASSES = 16
 """Node classes of a sweep: more classes put fewer edges inside a class (1/C of them) but
@@ -69,19 +72,18 @@ class SweepPlan:
     indptr: np.ndarray
 
 
-def sweep_plan(indptr: np.ndarray, src: np.ndarray, *, classes: int = CLASSES, seed: int = 0) -> SweepPlan:
-    """Deal the nodes at random into classes and regroup the target-major edge pattern.
+def sweep_plan(graph: Graph, *, classes: int = CLASSES, seed: int = 0) -> SweepPlan:
+    """Deal the nodes at random into classes and regroup the graph's target-major edge pattern.
 
     Args:
-      indptr: (n + 1,) CSR row pointer over targets (edges into node i are indptr[i]:indptr[i + 1]).
-      src: (E,) source of each edge, in that CSR order.
+      graph: the graph.
       classes: C, the number of classes (at most n are used).
       seed: seed of the random deal.
 
     Returns:
       The :class:`SweepPlan`; costs a few passes over the edges, no sort of them.
     """
-    n = indptr.size - 1
+    n = graph.n
     count = max(1, min(classes, n))
     label = np.random.default_rng(seed).integers(0, count, n, dtype=np.uint8 if count <= 256 else np.int64)
     order = np.argsort(label, kind="stable")  # a radix sort of small integers: O(n)
@@ -89,14 +91,21 @@ def sweep_plan(indptr: np.ndarray, src: np.ndarray, *, classes: int = CLASSES, s
     np.cumsum(np.bincount(label, minlength=count), out=bounds[1:])
     position = np.empty(n, dtype=np.int64)
     position[order] = np.arange(n)
-    degree = np.diff(indptr)[order]
-    new_indptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(degree, out=new_indptr[1:])
-    # edge ids row by row in the new order: start of each row, then a running offset inside it
-    edges = np.arange(new_indptr[-1], dtype=np.int64)
-    edges += np.repeat(indptr[order] - new_indptr[:-1], degree)
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(graph.in_degree()[order], out=indptr[1:])
+    edges, _ = graph.in_edges_of(order)  # row by row in the new order
     index_type = np.int32 if max(n, edges.size) < 2**31 - 1 else np.int64
-    return SweepPlan(order, bounds, edges, position[src[edges]].astype(index_type), new_indptr.astype(index_type))
+    return SweepPlan(order, bounds, edges, position[graph.src[edges]].astype(index_type), indptr.astype(index_type))
+
+
+_PLANS: "weakref.WeakKeyDictionary[Graph, SweepPlan]" = weakref.WeakKeyDictionary()
+
+
+def cached_sweep_plan(graph: Graph) -> SweepPlan:
+    """:func:`sweep_plan` with its defaults, built on first use and kept while ``graph`` lives."""
+    if graph not in _PLANS:
+        _PLANS[graph] = sweep_plan(graph)
+    return _PLANS[graph]
 
 
 def gauss_seidel(plan: SweepPlan, transition: np.ndarray, leak: np.ndarray, teleport: np.ndarray, damping: float,
@@ -133,14 +142,15 @@ def gauss_seidel(plan: SweepPlan, transition: np.ndarray, leak: np.ndarray, tele
     target = tol * (1.0 - alpha) * float(v.sum())
     x = np.asarray(x0, dtype=np.float64)[order]
     x = x / x.sum()
+    to_leaky = None if dangling == "teleport" else np.zeros(n)  # non-zero only at the leaking nodes
+    from_v = 1.0 - alpha
     best, since_best, bound_residual = np.inf, 0, np.inf
     for sweep in range(1, maxiter + 1):
         # b plus the leaked mass of the old x, lagged like the edges inside a class (both in R)
         leaked = leak_of_leaky * x[leaky]
-        if dangling == "teleport":
-            from_v, to_leaky = (1.0 - alpha) + leaked.sum(), None
+        if to_leaky is None:
+            from_v = (1.0 - alpha) + leaked.sum()
         else:
-            from_v, to_leaky = 1.0 - alpha, np.zeros(n)
             to_leaky[leaky] = leaked
         total = change = 0.0
         for start, block in classes:

@@ -340,6 +340,20 @@ def _constant(value, xp):
     return jax.lax.stop_gradient(value) if xp is jnp else value
 
 
+def _segment_max(values, segments, num, xp):
+    if xp is jnp:
+        return jax.ops.segment_max(values, segments, num_segments=num)
+    peak = np.full(num, -np.inf)
+    np.maximum.at(peak, segments, values)
+    return peak
+
+
+def _segment_sum(values, segments, num, xp):
+    if xp is jnp:
+        return jax.ops.segment_sum(values, segments, num_segments=num)
+    return np.bincount(segments, weights=values, minlength=num)
+
+
 def _mixture_transition(theta, tables, xp=jnp):
     return _softmax(theta, xp)[tables["rel"]] * tables["unit"]
 
@@ -353,16 +367,9 @@ def _scale_transition(theta, tables, xp=jnp):
 def _feature_transition(theta, tables, xp=jnp):
     score = tables["log_base"] + tables["feat"] @ theta
     slot, num = tables["slot"], tables["slots"].shape[0]
-    if xp is jnp:
-        peak = jax.ops.segment_max(score, slot, num_segments=num)
-    else:
-        peak = np.full(num, -np.inf)
-        np.maximum.at(peak, slot, score)
+    peak = _segment_max(score, slot, num, xp)
     shifted = xp.exp(score - _constant(peak, xp)[slot])
-    if xp is jnp:
-        total = jax.ops.segment_sum(shifted, slot, num_segments=num)
-    else:
-        total = np.bincount(slot, weights=shifted, minlength=num)
+    total = _segment_sum(shifted, slot, num, xp)
     p_out = shifted / total[slot]
     target = tables.get("target")
     return p_out if target is None else p_out[target]

@@ -35,6 +35,7 @@ from fitrank.pagerank import (
     solve_operator,
     walk_operator,
 )
+from fitrank.sweeps import sweep_plan
 from fitrank.weightings import KINDS, make_weighting
 
 SOLVERS = ("power", "gauss-seidel", "bicgstab", "anderson")
@@ -352,7 +353,7 @@ def test_sweep_plan_regroups_the_edge_pattern():
     # The plan's regrouped CSR must be P with rows and columns both permuted by its node order,
     # compared with scipy's own fancy indexing; classes are contiguous ranges of positions.
     graph = random_typed_graph(40, n=60, num_relations=3)
-    plan = graph.sweep_plan()
+    plan = sweep_plan(graph)
     assert np.array_equal(np.sort(plan.order), np.arange(graph.n))
     p = np.random.default_rng(40).random(graph.num_edges)
     expected = graph.matrix(p)[plan.order][:, plan.order].toarray()
