@@ -5,9 +5,9 @@ builds, for k = 50 and 100, a Galerkin model (relation mixture) and
 interpolation models (relation scale and feature log-linear, r = 2k rows), and
 prints for each: full solve time, online time for the scores of 2,000 nodes,
 their ratio, and the worst Kendall tau / normalised L1 on the top-100 over 20
-fresh parameter points. For the feature weighting it also prints the trade-off
-between edges touched by the interpolation rows and accuracy, over cost
-weights gamma.
+fresh parameter points. For both interpolated weightings it also prints the
+trade-off between edges touched by the interpolation rows and accuracy, over
+cost weights gamma.
 
     python experiments/bench_reduced.py            # about 2M edges
     python experiments/bench_reduced.py --quick    # small, under a minute
@@ -105,17 +105,17 @@ def main() -> None:
                          f" (rows and assembly {model.info['timings']['assemble_s']:.1f} s)")
             print(lines[-1], flush=True)
         results[kind] = {"method": method, "full_solve_s": full_s, "by_rank": per_rank}
-        if kind == "features":
+        if method == "interpolation":
             k = ranks[-1]
             curve = []
-            for gamma in (0.0, 0.25, 1.0, 4.0, 16.0):
+            for gamma in (0.0, 0.05, 0.25, 1.0, 4.0, 16.0):
                 settings = ReductionSettings(method=method, samples=samples, rank=k, rows=2 * k, gamma=gamma)
                 model = build_reduced_model(problem, settings, progress=False)
                 tau, l1 = accuracy(model, fresh, exact)
                 online = online_seconds(model, score_nodes, fresh)
                 curve.append({"gamma": gamma, "edges_touched": model.info["edges_touched"], "tau_top100_min": tau,
                               "l1_top100_max": l1, "online_s": online})
-                print(f"  trade-off gamma={gamma:<5} edges touched {model.info['edges_touched']:>8d}"
+                print(f"  {kind} trade-off gamma={gamma:<5} edges touched {model.info['edges_touched']:>8d}"
                       f" ({model.info['edges_touched'] / graph.num_edges:6.1%})  tau>={tau:.5f}  L1<={l1:.1e}"
                       f"  online {online * 1e3:.3f} ms", flush=True)
             results[kind]["tradeoff"] = curve
