@@ -9,9 +9,11 @@ Forming (M(theta) U)_I needs only the in-edges of I (and, without a
 closed-form out-weight, the out-edges of their sources): the *local subgraph*,
 extracted once offline. The small constrained problem is solved by one
 Cholesky factorisation of its equilibrated normal matrix and the Schur
-complement of the constraint (:func:`constrained_least_squares`), which JAX
-differentiates safely (an SVD-based least-squares solve has fragile gradients
-at repeated singular values).
+complement of the constraint (:func:`constrained_least_squares`). Its
+derivative is written out (implicit differentiation of the KKT system, edge by
+edge for the local subgraph), so a gradient costs about one more solve instead
+of autodiff's passes through B^T B and the sparse product; an SVD-based solve
+would also have fragile gradients at repeated singular values.
 
 Rows are picked by greedy pivoted QR on the rows of Z = [M(theta_1) U, ...,
 M(theta_q) U] (the Businger-Golub pivoting behind DEIM). The cost-aware variant
@@ -324,7 +326,7 @@ def _constrained_least_squares_jvp(primals, tangents):
 
 
 def _kkt_tangent(drive, d_sums_c, parts):
-    """dc from N dc + d_mu u = drive, u . dc = -d_sums_c (unscaled), on the factor in ``parts``."""
+    """dc from (B^T B) dc + d_mu u = drive, u . dc = -d_sums_c (unscaled u), on the factor in ``parts``."""
     normal, factor, scale, u, z, _ = parts
     t = jax.lax.custom_linear_solve(lambda v: normal @ v, drive * scale,
                                     lambda _, b: jax.scipy.linalg.cho_solve(factor, b), symmetric=True)

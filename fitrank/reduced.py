@@ -180,15 +180,20 @@ class ReducedModel:
     def scorer(self, nodes) -> Scorer:
         """A :class:`Scorer` returning x at ``nodes`` (S,) without n-sized work."""
         nodes = np.asarray(nodes, dtype=np.int64)
-        solve = self.coefficient_fn
+        if "values" not in self._jitted:
+            solve = self.coefficient_fn
 
-        def values(theta, arrays):
-            return solve(theta, arrays["solve"]) @ arrays["readout"]
+            def values(theta, arrays):
+                return solve(theta, arrays["solve"]) @ arrays["readout"]
+
+            # one function per model: scorers of other node sets (and objectives built on
+            # them) then share jit's compiled programs whenever the shapes agree
+            self._jitted["values"] = values
 
         # device arrays once, here: NumPy arguments would be copied in on every call
         readout = np.ascontiguousarray(self.basis.vectors[nodes].T)
         arrays = jax.device_put({"readout": readout, "solve": self.arrays})
-        return Scorer(values, arrays, nodes)
+        return Scorer(self._jitted["values"], arrays, nodes)
 
     def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
         """Certified ||x(theta) - U c(theta)||_1 (one full sparse mat-vec)."""
