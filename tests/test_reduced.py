@@ -315,3 +315,18 @@ def test_scorer_differences_equal_differences_of_scores():
     x = np.asarray(jax.jit(scorer.fn)(theta, scorer.arrays))
     got = np.asarray(jax.jit(margins.fn)(theta, margins.arrays))
     np.testing.assert_allclose(got, 3.0 * (x[first] - x[second]), rtol=1e-12, atol=1e-15)
+
+
+def test_scorers_of_one_model_share_one_function():
+    # Sweeps and the explorer build many scorers on one model; jit caches compiled programs
+    # by function and shapes, so scorers of equal-sized node sets must share the function.
+    model = _model("scale", "interpolation")
+    n = model.problem.graph.n
+    nodes = [np.arange(start, n, 5)[:40] for start in (0, 1)]
+    first, second = (model.scorer(chosen) for chosen in nodes)
+    assert first.fn is second.fn
+    values = jax.jit(first.fn)
+    theta = jnp.asarray(model.problem.weighting.theta0)
+    for scorer, chosen in zip((first, second), nodes):
+        np.testing.assert_allclose(np.asarray(values(theta, scorer.arrays)), model.vector(theta)[chosen],
+                                   rtol=1e-10, atol=1e-15)
