@@ -7,6 +7,9 @@ here, at import time, before pytest collects anything.
 import os
 
 os.environ.setdefault("JAX_PLATFORMS", "cpu")
+# The CLI keeps compiled programs on disk; in-process CLI tests must not switch that on
+# for the whole suite (tests/test_cli.py checks the cache in subprocesses of its own).
+os.environ.setdefault("FITRANK_COMPILE_CACHE", "off")
 
 import jax  # noqa: E402
 

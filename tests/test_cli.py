@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import json
+import os
+import subprocess
+import sys
 import tomllib
 
 from fitrank.cli import main
@@ -55,3 +59,24 @@ def test_bad_data_file_is_one_line_exit_2(tmp_path, capsys):
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "edges.csv" in err and "row 2" in err
     assert not (tmp_path / "out").exists()
+
+
+def test_fit_keeps_compiled_programs_on_disk_and_reuses_them(tmp_path):
+    # Two fits in fresh processes with one compile cache: the first writes programs there,
+    # the second runs from them and gives the same result.json numbers.
+    config = _config(tmp_path, extra="plots = false\n")
+    cache = tmp_path / "compiled"
+    env = {**os.environ, "FITRANK_COMPILE_CACHE": str(cache)}
+    outputs = []
+    for run in ("first", "second"):
+        out = tmp_path / run
+        done = subprocess.run([sys.executable, "-m", "fitrank.cli", "fit", str(config), "--quiet", "--out", str(out)],
+                              env=env, capture_output=True, text=True, timeout=300)
+        assert done.returncode == 0, done.stderr
+        if run == "first":
+            written = sorted(path.name for path in cache.iterdir())
+            assert written, "no compiled program was kept"
+        outputs.append(json.loads((out / "result.json").read_text()))
+    assert outputs[0]["params"] == outputs[1]["params"]
+    assert outputs[0]["metrics"] == outputs[1]["metrics"]
+    assert sorted(path.name for path in cache.iterdir()) == written  # the second run found them all
