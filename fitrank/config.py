@@ -38,7 +38,7 @@ from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.losses import LOSSES, get_loss
 from fitrank.objective import ObjectiveSpec
 from fitrank.pagerank import DANGLING_POLICIES
-from fitrank.reduced import ReductionSettings
+from fitrank.reduced import METHODS as REDUCTION_METHODS, ReductionSettings
 from fitrank.train import OPTIMIZERS, LoopSettings
 from fitrank.weightings import KINDS
 
@@ -104,7 +104,7 @@ class WeightingSection:
 class ReductionSection:
     method: str = _key(_REDUCTION.method, "reduced model: galerkin (mixture only), interpolation (any), auto "
                                           "(galerkin when the weighting is affine)", "str",
-                       choices=("auto", "galerkin", "interpolation"))
+                       choices=REDUCTION_METHODS)
     samples: int = _key(_REDUCTION.samples, "parameter points solved in full to build the basis", "int", low=2)
     rank: int | None = _key(None, "basis size k; \"auto\" = smallest k whose lost energy is <= energy", "int?",
                             low=1)

@@ -203,19 +203,16 @@ def interpolation_coefficients(theta, arrays: dict, *, problem_static: tuple):
         affine_coefficients or None), bound with functools.partial.
     """
     alpha, dangling, transition, leak_coefficients, coefficients = problem_static
-    basis_rows = arrays["basis_rows"]
     if coefficients is not None:
         rows_op = jnp.einsum("t,trk->rk", coefficients(theta), arrays["terms"])
+        return constrained_least_squares(rows_op, (1.0 - alpha) * arrays["teleport_rows"], arrays["sums"])
+    leak = leak_coefficients(theta)
+    if dangling == "teleport":
+        leak_walk = jnp.outer(arrays["teleport_rows"], leak @ arrays["leak_proj"])
     else:
-        leak = leak_coefficients(theta)
-        if dangling == "teleport":
-            leak_walk = jnp.outer(arrays["teleport_rows"], leak @ arrays["leak_proj"])
-        else:
-            leak_walk = (arrays["leak_rows"] @ leak)[:, None] * basis_rows
-        # the model's arrays are constants of theta: derivatives flow through p and the leak only
-        return _local_least_squares(transition(theta, arrays["tables"]), leak_walk, jax.lax.stop_gradient(arrays),
-                                    alpha)
-    return constrained_least_squares(rows_op, (1.0 - alpha) * arrays["teleport_rows"], arrays["sums"])
+        leak_walk = (arrays["leak_rows"] @ leak)[:, None] * arrays["basis_rows"]
+    # the model's arrays are constants of theta: derivatives flow through p and the leak only
+    return _local_least_squares(transition(theta, arrays["tables"]), leak_walk, jax.lax.stop_gradient(arrays), alpha)
 
 
 def _local_system(p, leak_walk, arrays, alpha):
