@@ -7,7 +7,8 @@ VENV ?= .venv
 STAMP := $(VENV)/.fitrank-installed
 # The demo: a real fit on the invented demo data (outputs in runs/demo/).
 DEMO_CMD = $(VENV)/bin/fitrank fit configs/demo.toml
-BENCHMARKS := $(sort $(wildcard experiments/*.py))
+# every script in experiments/ except the shared helpers (_name.py)
+BENCHMARKS := $(sort $(filter-out experiments/_%,$(wildcard experiments/*.py)))
 
 .PHONY: install demo test bench clean distclean
 
