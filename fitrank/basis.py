@@ -20,6 +20,9 @@ from dataclasses import dataclass
 import numpy as np
 
 
+_INDEPENDENT = 1e-12  # relative singular value below which a direction is rounding noise (common practice)
+
+
 @dataclass(frozen=True, eq=False)
 class PodBasis:
     """Leading left singular vectors of a snapshot matrix.
@@ -46,15 +49,19 @@ def choose_rank(singular_values: np.ndarray, rank: int | None = None, energy: fl
 
     Args:
       singular_values: (m,) descending.
-      rank: a fixed k (capped at the number of non-zero singular values).
+      rank: a fixed k (capped as below).
       energy: tolerance on 1 - sum_{i<=k} s_i^2 / sum s_i^2.
       max_rank: upper cap on k.
 
     Returns:
-      k >= 1.
+      k >= 1, never more than the numerically independent directions (singular
+      values above 1e-12 s_1): a fixed rank on snapshots that span fewer, e.g.
+      a parameter that does not change the walk, would add rounding noise as
+      basis vectors.
     """
-    s2 = np.asarray(singular_values, dtype=np.float64) ** 2
-    usable = int(np.sum(s2 > 0))
+    s = np.asarray(singular_values, dtype=np.float64)
+    s2 = s**2
+    usable = int(np.sum(s > s[0] * _INDEPENDENT)) if s.size else 0
     if rank is not None:
         k = min(int(rank), usable)
     else:
@@ -113,9 +120,6 @@ def pod_basis(snapshots: np.ndarray, rank: int | None = None, energy: float | No
     return PodBasis(vectors, s, _lost(s, k))
 
 
-_INDEPENDENT = 1e-12  # relative singular value below which a direction is rounding noise (common practice)
-
-
 def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = None, energy: float | None = None,
                  max_rank: int | None = None) -> PodBasis:
     """Basis of the old snapshots plus new ones, from the old basis alone.
@@ -147,6 +151,5 @@ def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = No
         # The energy rule measures a direction against all snapshots, and the part of a new
         # snapshot the old basis misses can be tiny next to them: the rule would then drop
         # exactly what enrichment was for. Keep every numerically independent new direction.
-        independent = int(np.sum(s > s[0] * _INDEPENDENT))
-        new_k = max(new_k, choose_rank(s, min(k + added.shape[1], independent), max_rank=max_rank))
+        new_k = max(new_k, choose_rank(s, k + added.shape[1], max_rank=max_rank))
     return PodBasis(np.ascontiguousarray(u[:, :new_k]), s, _lost(s, new_k))

@@ -203,6 +203,18 @@ def test_extend_basis_by_energy_keeps_a_new_direction_however_small():
     assert extend_basis(basis, inside[:, None], energy=1e-10).rank == basis.rank
 
 
+def test_a_fixed_rank_stops_at_the_numerically_independent_directions():
+    # Snapshots that span 3 directions (as when a parameter does not change the walk):
+    # asking for 10 must not pad the basis with rounding noise, on either POD path.
+    rng = np.random.default_rng(9)
+    snapshots = rng.normal(size=(200, 3)) @ rng.normal(size=(3, 12))
+    for method in ("svd", "gram"):
+        basis = pod_basis(snapshots, rank=10, method=method)
+        assert basis.rank == 3, method
+        residual = snapshots - basis.vectors @ (basis.vectors.T @ snapshots)
+        assert np.abs(residual).max() < 1e-10 * np.abs(snapshots).max()
+
+
 def test_enrichment_repairs_a_too_small_basis():
     problem = _problem("scale")
     small = build_reduced_model(problem, ReductionSettings(samples=8, rank=4, rows=12), progress=False)
