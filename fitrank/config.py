@@ -106,7 +106,8 @@ class ReductionSection:
                                           "(galerkin when the weighting is affine)", "str",
                        choices=REDUCTION_METHODS)
     samples: int = _key(_REDUCTION.samples, "parameter points solved in full to build the basis", "int", low=2)
-    rank: int | None = _key(None, "basis size k; \"auto\" = smallest k whose lost energy is <= energy", "int?",
+    rank: int | None = _key(None, "basis size k (never more than the snapshots' numerically independent "
+                            "directions); \"auto\" = smallest k whose lost energy is <= energy", "int?",
                             low=1)
     energy: float = _key(_REDUCTION.energy, "tolerance on the lost snapshot energy 1 - sum_{i<=k} s_i^2 / "
                                             "sum s_i^2", "float", low=0.0, high=1.0, low_open=True, high_open=True)
