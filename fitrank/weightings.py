@@ -279,12 +279,10 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
     """
     if graph.features.shape[1] == 0:
         raise FitrankInputError("the features weighting needs numeric edge feature columns; the edge table has none")
-    center = graph.features.mean(axis=0)
-    spread = graph.features.std(axis=0)
-    spread = np.where(spread > 0, spread, 1.0)
+    center, spread, standard = _standardise(graph.features)
     # standardised features stored (f, E): theta @ feat reads each row once, where XLA's
     # (E, f) @ (f,) product took about twice as long
-    feat = np.ascontiguousarray(((graph.features - center) / spread).T)
+    feat = np.ascontiguousarray(standard.T)
     log_base = np.log(graph.base)
 
     def local_tables(edge_ids):
@@ -323,6 +321,24 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         feature_center=center,
         feature_scale=spread,
     )
+
+
+def _standardise(features: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-column (center, spread, standardised features) of ``features`` (E, f).
+
+    Each column is first divided by its largest magnitude, so the mean and the
+    standard deviation cannot overflow whatever the units (values near 1e308
+    are finite, their sum is not; at 1e200 the variance is not). A constant
+    column is only centred.
+    """
+    magnitude = np.abs(features).max(axis=0)
+    magnitude = np.where(magnitude > 0, magnitude, 1.0)
+    unit = features / magnitude
+    unit_center = unit.mean(axis=0)
+    unit_spread = unit.std(axis=0)
+    varies = unit_spread > 0
+    standard = (unit - unit_center) / np.where(varies, unit_spread, 1.0)
+    return unit_center * magnitude, np.where(varies, unit_spread * magnitude, 1.0), standard
 
 
 # Transitions are module-level functions of (theta, tables) only, so one jit-compiled

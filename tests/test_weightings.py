@@ -166,6 +166,26 @@ def test_constant_feature_column_has_no_effect():
                                rtol=1e-12)
 
 
+
+@pytest.mark.parametrize("unit", [1e200, 1e307, -1e308])
+def test_features_in_huge_units_keep_their_effect(unit):
+    # The same feature in huge units must give the same walk: standardisation removes units.
+    # Taken naively, the variance (at 1e200) or even the mean (near 1e308) overflows and the
+    # feature silently becomes zero or NaN.
+    graph = random_typed_graph(4, n=30, num_features=2)
+    features = graph.features / np.abs(graph.features).max(axis=0)
+    huge = features * np.array([1.0, unit])
+    walks = [make_weighting("features", build_graph(graph.src, graph.dst, graph.n, base=graph.base,
+                                                    features=table, feature_names=graph.feature_names))
+             for table in (features, huge)]
+    theta = np.array([0.4, 0.9])
+    plain = transition_of(walks[0], theta)
+    scaled = transition_of(walks[1], theta * [1.0, np.sign(unit)])  # negative units flip the feature
+    assert np.all(np.isfinite(scaled))
+    np.testing.assert_allclose(scaled, plain, rtol=1e-10)
+    # and the second feature still matters
+    assert np.abs(transition_of(walks[1], theta * [1.0, 0.0]) - scaled).max() > 1e-3
+
 # ----------------------------------------------------------------------------- sampling
 
 
