@@ -219,9 +219,19 @@ def walk_operator(
         raise FitrankInputError(
             f"theta has shape {theta.shape}; the {weighting.kind} weighting has {weighting.num_params} parameters"
         )
+    if not np.all(np.isfinite(theta)):
+        bad = int(np.argmin(np.isfinite(theta)))
+        raise FitrankInputError(f"theta has a non-finite entry ({weighting.param_names[bad]} = {theta[bad]}); "
+                                "PageRank is defined for finite parameters only")
     v = check_teleport(graph.teleport if teleport is None else teleport, graph.n)
     # NumPy, not JAX: the same formula, and a single solve pays no compile (0.2 s at 1M edges)
     p = np.asarray(weighting.transition(theta, weighting.tables, xp=np), dtype=np.float64)
+    if not np.all(np.isfinite(p)):
+        # caught here, a solver would iterate to maxiter on NaN before failing
+        bad = int(np.argmin(np.isfinite(p)))
+        source, target = graph.node_ids[graph.src[bad]], graph.node_ids[graph.dst[bad]]
+        raise FitrankInputError(f"the {weighting.kind} weighting gives a non-finite transition probability on the "
+                                f"edge {source} -> {target}; check that edge's weight and features")
     leak = weighting.leak_basis @ np.asarray(weighting.leak_coefficients(theta, xp=np), dtype=np.float64)
     return WalkOperator(graph.matrix(p), leak, v, float(damping), dangling, p,
                         functools.partial(cached_sweep_plan, graph))
