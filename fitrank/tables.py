@@ -163,6 +163,7 @@ def read_edges(edges: str | Path, nodes: str | Path | None = None, *, notes: lis
         sorted_features = pool.submit(_gather_rows, features, order)
         base = base[order]
         features = sorted_features.result()
+    _refuse_overflowing_out_weight(edges, src, base, order, node_ids)
     merged = num_rows - int(np.count_nonzero(starts_triple))
     if merged:
         src, dst, relation, base, features = _merge_duplicate_edges(src, dst, relation, base, features, starts_triple)
@@ -321,7 +322,7 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
     names = table.column_names
     repeated = [c for i, c in enumerate(names) if c in names[:i]]
     if repeated:
-        raise DataError(path, "the column name appears twice in the header", column=repeated[0])
+        raise DataError(path, "the column name appears twice in the header" + _header_hint(names), column=repeated[0])
     if table.num_rows == 0:
         raise DataError(path, "the table has no data rows")
     return table
@@ -369,6 +370,21 @@ def _csv_error_row(file: Path, text_columns: tuple[str, ...], message: str) -> t
     return None, message
 
 
+def _header_hint(names: list[str]) -> str:
+    """A hint when the header row looks like data: numbers as column names mean it is missing."""
+    if any(_looks_numeric(name) for name in names):
+        return "; the first line is read as the header and holds numbers: does the file lack a header row?"
+    return ""
+
+
+def _looks_numeric(text: str) -> bool:
+    try:
+        float(text)
+    except ValueError:
+        return False
+    return True
+
+
 def _require_columns(
     table: pa.Table, path: str | Path, required: tuple[str, ...], allowed: tuple[str, ...] | None = None
 ) -> None:
@@ -376,7 +392,7 @@ def _require_columns(
     for column in required:
         if column not in names:
             found = ", ".join(repr(c) for c in names)
-            raise DataError(path, f"missing required column '{column}' (the table has {found})")
+            raise DataError(path, f"missing required column '{column}' (the table has {found}){_header_hint(names)}")
     for column in names if allowed is not None else ():
         if column not in allowed:
             raise DataError(path, f"unexpected column; this table takes only {', '.join(allowed)}", column=column)
@@ -778,6 +794,38 @@ def _merge_duplicate_edges(
     return src[first], dst[first], relation[first], summed, merged_features
 
 
+def _refuse_overflowing_out_weight(
+    path: str | Path, src: np.ndarray, base: np.ndarray, order: np.ndarray, node_ids: np.ndarray
+) -> None:
+    """Raise when a node's base weights sum beyond the float range (merged rows sum too).
+
+    Every weighting divides by such sums, and an infinite one turns the node's walk
+    into 0 or NaN. Only the sums matter relative to each other, so the fix is one factor.
+
+    Args:
+      src, base: (E,) rows sorted by :func:`_sort_edges`; order (E,) their file rows.
+    """
+    with np.errstate(over="ignore"):  # the overflow is what is looked for, not news for stderr
+        if np.isfinite(base.sum()):  # one cheap pass: no node's share can overflow then
+            return
+        overflow = ~np.isfinite(np.bincount(src, weights=base, minlength=node_ids.shape[0]))
+    node = int(overflow.argmax())
+    row = int(order[src == node].min())
+    raise DataError(
+        path,
+        f"the weights of node {_node_label(node_ids, node)!r}'s out-edges sum beyond the largest float "
+        "(1.8e308); divide the whole weight column by one common factor (the ranking does not change)",
+        row + 1,
+        "weight",
+    )
+
+
+def _node_label(node_ids: np.ndarray, index: int):
+    """The original id of node ``index`` as a plain Python int or str, for messages."""
+    node = node_ids[index]
+    return node.item() if isinstance(node, np.generic) else node
+
+
 # --------------------------------------------------------------------------- node table
 
 
@@ -788,8 +836,7 @@ def _refuse_duplicate_nodes(codes: np.ndarray, node_ids: np.ndarray, path: str |
     first_row_of[codes[first]] = first
 
     def problem(row: int) -> str:
-        node = node_ids[codes[row]]
-        node = node.item() if isinstance(node, np.generic) else node
+        node = _node_label(node_ids, codes[row])
         return f"node {node!r} is listed twice (first at row {first_row_of[codes[row]] + 1})"
 
     _raise_first(path, first_row_of[codes] != np.arange(codes.shape[0]), problem, "node")
