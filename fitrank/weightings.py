@@ -217,20 +217,27 @@ def relation_scale(graph: Graph, bound: float = 1.5) -> Weighting:
         Kendall tau 0.996 even for the best approximation in the basis, 1.5
         gives 0.999); training may leave the box and enrichment follows it.
     """
+    # Each node's weights divided by its largest per-relation sum: p_e is unchanged, and
+    # every number is O(1), so tiny base weights (even subnormal ones) cannot underflow
+    # to a 0 / 0 once scaled by exp(theta - max theta).
     out_weight = graph.relation_out_weight()
+    largest = out_weight.max(axis=1)
+    largest = np.where(largest > 0, largest, 1.0)
+    out_weight = out_weight / largest[:, None]
+    base = graph.base / largest[graph.src]
 
     def local_tables(edge_ids):
         edge_ids = np.asarray(edge_ids, dtype=np.int64)
         sources, slot = _sources_of(graph, edge_ids)
         return {
             "rel": graph.relation[edge_ids],
-            "base": graph.base[edge_ids],
+            "base": base[edge_ids],
             "slot": slot,
             "out_weight": out_weight[sources],
         }
 
     num_rel = graph.num_relations
-    full = {"rel": graph.relation, "base": graph.base, "slot": graph.src, "out_weight": out_weight}
+    full = {"rel": graph.relation, "base": base, "slot": graph.src, "out_weight": out_weight}
     return Weighting(
         kind="scale",
         param_names=tuple(f"scale:{label}" for label in _relation_labels(graph)),

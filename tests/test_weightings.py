@@ -186,6 +186,20 @@ def test_features_in_huge_units_keep_their_effect(unit):
     # and the second feature still matters
     assert np.abs(transition_of(walks[1], theta * [1.0, 0.0]) - scaled).max() > 1e-3
 
+@pytest.mark.parametrize("tiny", [5e-324, 1e-310, 1e-200])
+def test_scale_weighting_with_tiny_base_weights_is_the_same_walk(tiny):
+    # Node 0's out-edges all carry relation 1, which theta down-weights: tiny * exp(-3)
+    # underflows to 0 for the smallest weights, and the walk must not turn into 0 / 0.
+    src, dst, rel = np.array([0, 0, 1, 2, 2]), np.array([1, 2, 0, 0, 1]), np.array([1, 1, 0, 0, 1])
+    walks = [make_weighting("scale", build_graph(src, dst, 3, base=np.where(src == 0, weight, 1.0), relation=rel,
+                                                 relation_names=("a", "b")))
+             for weight in (1.0, tiny)]
+    theta = np.array([0.0, -3.0])
+    plain, small = (transition_of(w, theta) for w in walks)
+    assert np.all(np.isfinite(small))
+    np.testing.assert_allclose(small, plain, rtol=1e-12)
+
+
 # ----------------------------------------------------------------------------- sampling
 
 
