@@ -15,6 +15,31 @@ import tempfile
 from pathlib import Path
 
 
+def unwritable_reason(target: str | Path, *, folder: bool) -> str | None:
+    """Why ``target`` cannot be written atomically, or None when it can.
+
+    Checked before the work whose result it will hold, so that a bad output path
+    fails in a second, not after minutes of solving.
+
+    Args:
+      target: the folder (``folder=True``) or file to be written beside itself.
+
+    Returns:
+      a short reason ("... is a file; choose another path"), or None.
+    """
+    target = Path(target)
+    if target.exists() and target.is_dir() != folder:
+        return f"{target} is {'a file' if folder else 'a folder'}; choose another path"
+    parent = target.parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir():
+        return f"{target} cannot be created: {parent} is a file; choose another path"
+    if not os.access(parent, os.W_OK | os.X_OK):
+        return f"{target} cannot be created: no permission to write in {parent}"
+    return None
+
+
 @contextlib.contextmanager
 def staged_folder(target: str | Path):
     """Yield a fresh temporary folder beside ``target``; on success it replaces ``target``.

@@ -281,7 +281,9 @@ def parse_config(raw: dict, *, base_dir: str | Path = ".", source: str | Path | 
         for name in ("edges", "pairs", "nodes"):
             target = getattr(config.data, name)
             if target is not None and not target.is_file():
-                raise ConfigError(f"data.{name}", f"file not found: {target}", where)
+                problem = (f"{target} is a folder; give the table file itself" if target.is_dir()
+                           else f"file not found: {target}")
+                raise ConfigError(f"data.{name}", problem, where)
     return config
 
 

@@ -333,7 +333,8 @@ def optimize(
         per_step_seconds=float(np.median(durations[1:] or durations)) if durations else float("nan"),
         best_step=best_step,
         best_valid_acc=float(best_acc),
-        path=np.asarray(path, dtype=np.float64).reshape(len(path), -1),
+        # the width is given, not -1: a path with no finite iterate has none to infer
+        path=np.asarray(path, dtype=np.float64).reshape(len(path), theta.shape[0]),
         extras={"loss_param": objective.spec.loss_param},
     )
 

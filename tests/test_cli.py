@@ -80,3 +80,28 @@ def test_fit_keeps_compiled_programs_on_disk_and_reuses_them(tmp_path):
     assert outputs[0]["params"] == outputs[1]["params"]
     assert outputs[0]["metrics"] == outputs[1]["metrics"]
     assert sorted(path.name for path in cache.iterdir()) == written  # the second run found them all
+
+
+def test_unwritable_output_paths_are_refused_before_any_work(tmp_path, capsys):
+    # a file where a folder of the output path should be: found before the offline stage, not after it
+    config = _config(tmp_path)
+    blocker = tmp_path / "blocker"
+    blocker.write_text("not a folder\n")
+    assert main(["build", str(config), "--set", f'reduction.model="{blocker / "m.npz"}"']) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "reduction.model" in err and "blocker is a file" in err, err
+    assert main(["fit", str(config), "--quiet", "--out", str(blocker / "run")]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "output.folder" in err and "blocker is a file" in err, err
+    assert main(["build", str(config), "--set", f'reduction.model="{tmp_path}"']) == 2
+    assert "is a folder" in capsys.readouterr().err
+    # fit with a shared model file under a file, and generate into a folder under a file
+    assert main(["fit", str(config), "--quiet", "--out", str(tmp_path / "run"),
+                 "--set", f'reduction.model="{blocker / "m.npz"}"']) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "reduction.model" in err and "blocker is a file" in err, err
+    for out in (blocker, blocker / "data"):
+        assert main(["generate", str(out), "--nodes", "50"]) == 2
+        err = capsys.readouterr().err.strip()
+        assert len(err.splitlines()) == 1 and "blocker is a file" in err, err
+    assert blocker.read_text() == "not a folder\n" and sorted(p.name for p in tmp_path.iterdir()) == ["blocker", "run.toml"]

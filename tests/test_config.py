@@ -62,6 +62,9 @@ def test_missing_files_and_bad_toml(config_file, tmp_path):
         load_config(config_file)
     assert str(config_file.resolve()) in str(info.value)
     assert load_config(config_file, check_files=False).data.edges.name == "edges.csv"
+    (tmp_path / "edges.csv").mkdir()  # a folder where the table should be is not "not found"
+    with pytest.raises(ConfigError, match=r"config key 'data.edges': .*edges.csv is a folder; give the table file"):
+        load_config(config_file)
     with pytest.raises(FitrankInputError, match="config file not found"):
         load_config(tmp_path / "nope.toml")
     broken = tmp_path / "broken.toml"

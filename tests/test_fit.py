@@ -120,6 +120,18 @@ def test_run_folder_contents_and_model_reuse(tmp_path):
     assert again.record["model"]["reused"] is True
 
 
+def test_a_shared_model_file_is_created_by_the_first_fit_and_reused_by_the_next(tmp_path):
+    # reduction.model names a file "to reuse or create": a fit into another run folder must find it
+    config = _config(tmp_path, "scale")
+    shared = tmp_path / "models" / "shared.npz"
+    settings = ["reduction.samples=24", "output.plots=false", f'reduction.model="{shared}"']
+    first = fit(config, overrides=settings, out=tmp_path / "run1", progress=False, log=lambda m: None)
+    assert first.record["model"]["reused"] is False and shared.is_file()
+    second = fit(config, overrides=settings, out=tmp_path / "run2", progress=False, log=lambda m: None)
+    assert second.record["model"]["reused"] is True
+    assert second.model.rank == first.model.rank
+
+
 @pytest.mark.parametrize("override,key", [
     ("training.lerning_rate=0.1", "training.lerning_rate"),
     ("training.steps=-3", "training.steps"),

@@ -152,6 +152,20 @@ def test_callback_and_stall_and_non_finite_stops(problem, objective):
     assert np.array_equal(result.theta, np.zeros(3))  # the last finite iterate
 
 
+def test_a_non_finite_start_stops_at_once_and_keeps_the_start():
+    # e.g. data whose reduced objective is NaN at theta0: no finite iterate at all
+    def nowhere_finite(theta, arrays):
+        return jnp.asarray(jnp.nan), jnp.ones_like(theta)
+
+    nan_objective = Objective(None, nowhere_finite, {"weight": jnp.ones(1)}, np.zeros(3),
+                              ObjectiveSpec("logistic", 1.0))
+    start = np.array([0.5, -1.0, 2.0])
+    result = optimize(nan_objective, start, LoopSettings(optimizer="lbfgs"), progress=False)
+    assert result.stopped_because == "non_finite" and result.steps == 0 and result.history == ()
+    assert np.array_equal(result.theta, start)
+    assert result.path.shape == (0, 3)
+
+
 def test_same_seed_same_numbers(problem, objective):
     settings = LoopSettings(optimizer="adam", learning_rate=0.1, max_steps=15, batch_pairs=100, seed=7)
     first = optimize(objective, problem.weighting.theta0, settings, progress=False)
