@@ -21,6 +21,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import scipy.sparse as sp
 
+from fitrank.errors import FitrankInputError
+
 SPLITS = ("train", "valid", "test")
 """Split names; :attr:`Pairs.split` stores their positions in this tuple."""
 
@@ -208,25 +210,36 @@ def build_graph(
     Returns:
       The graph with edges in CSR (target-major) order.
     """
-    src = np.asarray(src, dtype=np.int64)
-    dst = np.asarray(dst, dtype=np.int64)
+    n = _whole_number(n, "n", low=1)
+    src = _indices(src, "src", n)
+    dst = _indices(dst, "dst", n)
     num_edges = src.shape[0]
-    base = np.ones(num_edges) if base is None else np.asarray(base, dtype=np.float64)
-    relation = np.zeros(num_edges, dtype=np.int64) if relation is None else np.asarray(relation, dtype=np.int64)
-    features = np.zeros((num_edges, 0)) if features is None else np.asarray(features, dtype=np.float64)
+    if dst.shape[0] != num_edges:
+        raise FitrankInputError(f"build_graph: src has {num_edges} entries and dst {dst.shape[0]}; "
+                                "give one of each per edge")
+    base = np.ones(num_edges) if base is None else _per_edge(base, "base", num_edges)
+    if not np.all(base > 0):
+        first = int(np.argmin(base > 0))
+        raise FitrankInputError(f"build_graph: base[{first}] is {base[first]}; base weights must be finite numbers > 0")
+    relation = (np.zeros(num_edges, dtype=np.int64) if relation is None
+                else _indices(relation, "relation", len(relation_names), what="relation codes"))
+    if relation.shape[0] != num_edges:
+        raise FitrankInputError(f"build_graph: relation has {relation.shape[0]} entries for {num_edges} edges")
+    features = np.zeros((num_edges, 0)) if features is None else _per_edge(features, "features", num_edges)
     if features.ndim == 1:
         features = features[:, None]
+    if features.shape[1] != len(feature_names):
+        raise FitrankInputError(f"build_graph: features has {features.shape[1]} columns but {len(feature_names)} "
+                                "feature_names; name every column")
+    if node_ids is not None and len(node_ids) != n:
+        raise FitrankInputError(f"build_graph: node_ids has {len(node_ids)} entries; expected n = {n}")
     already_sorted = bool(np.all((dst[1:] > dst[:-1]) | ((dst[1:] == dst[:-1]) & (src[1:] >= src[:-1]))))
     if not already_sorted:  # loaders hand over sorted edges; sorting 10M edges again costs seconds
         order = np.lexsort((src, dst))
         src, dst, base, relation, features = src[order], dst[order], base[order], relation[order], features[order]
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(np.bincount(dst, minlength=n), out=indptr[1:])
-    if teleport is None:
-        teleport = np.full(n, 1.0 / n)
-    else:
-        teleport = np.asarray(teleport, dtype=np.float64)
-        teleport = teleport / teleport.sum()
+    teleport = np.full(n, 1.0 / n) if teleport is None else check_teleport(teleport, n)
     return Graph(
         n=int(n),
         src=src,
@@ -240,3 +253,63 @@ def build_graph(
         node_ids=np.arange(n) if node_ids is None else np.asarray(node_ids),
         teleport=teleport,
     )
+
+
+def _whole_number(value, name: str, low: int) -> int:
+    try:
+        whole = not isinstance(value, (bool, np.bool_)) and float(value).is_integer() and value >= low
+    except (TypeError, ValueError):
+        whole = False
+    if not whole:
+        raise FitrankInputError(f"build_graph: {name} = {value!r}; expected a whole number >= {low}")
+    return int(value)
+
+
+def _indices(values, name: str, bound: int, what: str = "node indices") -> np.ndarray:
+    """``values`` as (E,) int64, refusing what is not a whole number in [0, bound)."""
+    array = np.asarray(values)
+    if array.ndim != 1 or array.dtype.kind not in "iuf":
+        raise FitrankInputError(f"build_graph: {name} must be a 1-D array of {what}, got dtype {array.dtype} "
+                                f"and shape {array.shape}")
+    as_int = array.astype(np.int64) if array.dtype.kind == "f" and np.all(np.isfinite(array)) else array
+    bad = (as_int != array) | (as_int < 0) | (as_int >= bound)
+    if np.any(bad):
+        first = int(np.argmax(bad))
+        raise FitrankInputError(f"build_graph: {name}[{first}] is {array[first].item()!r}; {what} must be whole "
+                                f"numbers in [0, {bound})")
+    return as_int.astype(np.int64)
+
+
+def _per_edge(values, name: str, num_edges: int) -> np.ndarray:
+    """``values`` as float64 with one finite entry (or row) per edge."""
+    array = np.asarray(values, dtype=np.float64)
+    if array.ndim == 0 or array.shape[0] != num_edges:
+        raise FitrankInputError(f"build_graph: {name} has shape {array.shape}; expected {num_edges} rows, "
+                                "one per edge")
+    if not np.all(np.isfinite(array)):
+        first = int(np.argmin(np.isfinite(array).reshape(num_edges, -1).all(axis=1)))
+        raise FitrankInputError(f"build_graph: {name} has a non-finite value on edge {first}")
+    return array
+
+
+def check_teleport(teleport, n: int) -> np.ndarray:
+    """Validate a teleport vector and return it normalised to sum 1.
+
+    Args:
+      teleport: (n,) non-negative finite weights, not all zero.
+      n: number of nodes.
+
+    Returns:
+      (n,) float64 summing to 1.
+    """
+    v = np.asarray(teleport, dtype=np.float64)
+    if v.shape != (n,):
+        raise FitrankInputError(f"teleport vector has shape {v.shape}; expected ({n},), one weight per node")
+    if not np.all(np.isfinite(v)):
+        raise FitrankInputError(f"teleport vector has a non-finite entry at node index {int(np.argmin(np.isfinite(v)))}")
+    if np.any(v < 0):
+        raise FitrankInputError(f"teleport vector has a negative entry at node index {int(np.argmax(v < 0))}")
+    total = v.sum()
+    if total <= 0:
+        raise FitrankInputError("teleport vector is all zero; give at least one node a positive weight")
+    return v / total

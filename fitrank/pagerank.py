@@ -48,7 +48,7 @@ import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
 from fitrank.errors import ConvergenceError, FitrankInputError
-from fitrank.graph import Graph
+from fitrank.graph import Graph, check_teleport
 from fitrank.sweeps import SweepPlan, cached_sweep_plan, gauss_seidel
 from fitrank.weightings import Weighting
 
@@ -157,29 +157,6 @@ class WalkOperator:
     def residual(self, y: np.ndarray) -> np.ndarray:
         """(n,) r = M y - (1 - alpha) v."""
         return self.apply(y) - self.rhs()
-
-
-def check_teleport(teleport, n: int) -> np.ndarray:
-    """Validate a teleport vector and return it normalised to sum 1.
-
-    Args:
-      teleport: (n,) non-negative finite weights, not all zero.
-      n: number of nodes.
-
-    Returns:
-      (n,) float64 summing to 1.
-    """
-    v = np.asarray(teleport, dtype=np.float64)
-    if v.shape != (n,):
-        raise FitrankInputError(f"teleport vector has shape {v.shape}; expected ({n},), one weight per node")
-    if not np.all(np.isfinite(v)):
-        raise FitrankInputError(f"teleport vector has a non-finite entry at node index {int(np.argmin(np.isfinite(v)))}")
-    if np.any(v < 0):
-        raise FitrankInputError(f"teleport vector has a negative entry at node index {int(np.argmax(v < 0))}")
-    total = v.sum()
-    if total <= 0:
-        raise FitrankInputError("teleport vector is all zero; give at least one node a positive weight")
-    return v / total
 
 
 def check_walk_settings(damping: float, dangling: str) -> None:

@@ -286,12 +286,6 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
     """
     if graph.features.shape[1] == 0:
         raise FitrankInputError("the features weighting needs numeric edge feature columns; the edge table has none")
-    finite = np.isfinite(graph.features)
-    if not finite.all():
-        edge, column = np.argwhere(~finite)[0]
-        raise FitrankInputError(
-            f"feature '{graph.feature_names[column]}' is {graph.features[edge, column]} on the edge "
-            f"{graph.node_ids[graph.src[edge]]} -> {graph.node_ids[graph.dst[edge]]}; features must be finite numbers")
     center, spread, standard = _standardise(graph.features)
     # standardised features stored (f, E): theta @ feat reads each row once, where XLA's
     # (E, f) @ (f,) product took about twice as long

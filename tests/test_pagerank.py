@@ -543,16 +543,3 @@ def test_a_non_finite_theta_is_refused_before_any_solve(small):
     graph, weighting = small
     with pytest.raises(FitrankInputError, match=r"theta has a non-finite entry \(scale:.* = nan\)"):
         pagerank(graph, weighting, np.array([0.0, np.nan]))
-
-
-def test_a_non_finite_feature_is_refused_naming_its_edge():
-    graph = random_typed_graph(30, n=10, num_relations=2, num_features=2)
-    features = graph.features.copy()
-    features[4, 1] = np.inf
-    ids = np.array([f"n{i}" for i in range(graph.n)])
-    broken = build_graph(graph.src, graph.dst, graph.n, base=graph.base, features=features,
-                         feature_names=graph.feature_names, node_ids=ids)
-    bad = int(np.flatnonzero(np.isinf(broken.features[:, 1]))[0])  # the graph may reorder its edges
-    edge = f"{ids[broken.src[bad]]} -> {ids[broken.dst[bad]]}"
-    with pytest.raises(FitrankInputError, match=f"feature '{graph.feature_names[1]}' is inf on the edge {edge};"):
-        make_weighting("features", broken)
