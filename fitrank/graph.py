@@ -277,7 +277,7 @@ def _indices(values, name: str, bound: int, what: str = "node indices") -> np.nd
         first = int(np.argmax(bad))
         raise FitrankInputError(f"build_graph: {name}[{first}] is {array[first].item()!r}; {what} must be whole "
                                 f"numbers in [0, {bound})")
-    return as_int.astype(np.int64)
+    return as_int.astype(np.int64, copy=False)
 
 
 def _per_edge(values, name: str, num_edges: int) -> np.ndarray:
