@@ -14,30 +14,37 @@ import shutil
 import tempfile
 from pathlib import Path
 
+from fitrank.errors import ConfigError, FitrankInputError
 
-def unwritable_reason(target: str | Path, *, folder: bool) -> str | None:
-    """Why ``target`` cannot be written atomically, or None when it can.
+
+def refuse_unwritable(target: str | Path, *, folder: bool, key: str | None = None) -> None:
+    """Raise unless ``target`` can be written atomically.
 
     Checked before the work whose result it will hold, so that a bad output path
     fails in a second, not after minutes of solving.
 
     Args:
       target: the folder (``folder=True``) or file to be written beside itself.
+      key: the config key that sets it: the error is then a ConfigError naming it.
 
-    Returns:
-      a short reason ("... is a file; choose another path"), or None.
+    Raises:
+      FitrankInputError (ConfigError with ``key``): a file or folder is in the way,
+        or the nearest existing parent is not writable.
     """
     target = Path(target)
+    reason = None
     if target.exists() and target.is_dir() != folder:
-        return f"{target} is {'a file' if folder else 'a folder'}; choose another path"
-    parent = target.parent
-    while not parent.exists():
-        parent = parent.parent
-    if not parent.is_dir():
-        return f"{target} cannot be created: {parent} is a file; choose another path"
-    if not os.access(parent, os.W_OK | os.X_OK):
-        return f"{target} cannot be created: no permission to write in {parent}"
-    return None
+        reason = f"{target} is {'a file' if folder else 'a folder'}; choose another path"
+    else:
+        parent = target.parent
+        while not parent.exists():
+            parent = parent.parent
+        if not parent.is_dir():
+            reason = f"{target} cannot be created: {parent} is a file; choose another path"
+        elif not os.access(parent, os.W_OK | os.X_OK):
+            reason = f"{target} cannot be created: no permission to write in {parent}"
+    if reason is not None:
+        raise ConfigError(key, reason) if key else FitrankInputError(reason)
 
 
 @contextlib.contextmanager

@@ -74,12 +74,13 @@ def _cmd_build(args: argparse.Namespace) -> int:
     import time
 
     from fitrank.config import load_config
-    from fitrank.pipeline import model_path, prepare, reduction_settings, refuse_unwritable
+    from fitrank.atomic import refuse_unwritable
+    from fitrank.pipeline import model_path, prepare, reduction_settings
     from fitrank.reduced import build_reduced_model
     from fitrank.snapshots import local_executor
 
     config = load_config(args.config, args.overrides)
-    refuse_unwritable(model_path(config), "reduction.model", folder=False)
+    refuse_unwritable(model_path(config), folder=False, key="reduction.model")
     start = time.perf_counter()
     _, problem = prepare(config)
     workers = config.reduction.workers

@@ -53,7 +53,7 @@ import pyarrow.csv as pa_csv
 import pyarrow.parquet as pq
 from scipy.special import ndtr
 
-from fitrank.atomic import staged_folder, unwritable_reason
+from fitrank.atomic import refuse_unwritable, staged_folder
 from fitrank.errors import FitrankInputError
 from fitrank.graph import SPLITS, Graph, build_graph
 from fitrank.pagerank import pagerank
@@ -706,12 +706,6 @@ def _write_table(frame: pd.DataFrame, path: Path, file_format: str) -> None:
         pa_csv.write_csv(table, out, pa_csv.WriteOptions(include_header=False, quoting_style="none"))
 
 
-def _refuse_unwritable(out_dir: Path) -> None:
-    reason = unwritable_reason(out_dir, folder=True)
-    if reason is not None:
-        raise FitrankInputError(reason)
-
-
 def write_dataset(out_dir, edges: pd.DataFrame, pairs: pd.DataFrame, truth: dict, *,
                   file_format: str = "csv", overwrite: bool = False) -> dict[str, Path]:
     """Write ``edges``, ``pairs`` and ``truth.json`` into ``out_dir`` all at once.
@@ -732,7 +726,7 @@ def write_dataset(out_dir, edges: pd.DataFrame, pairs: pd.DataFrame, truth: dict
     if file_format not in FORMATS:
         raise FitrankInputError(f"format must be one of {', '.join(FORMATS)}, got '{file_format}'")
     out_dir = Path(out_dir)
-    _refuse_unwritable(out_dir)
+    refuse_unwritable(out_dir, folder=True)
     if out_dir.is_dir() and any(out_dir.iterdir()) and not overwrite:
         raise FitrankInputError(f"{out_dir} exists and is not empty; choose a new folder or pass --force")
     names = {"edges": f"edges.{file_format}", "pairs": f"pairs.{file_format}", "truth": TRUTH_FILE}
@@ -759,7 +753,7 @@ def run_cli(args) -> None:
     options = {name: getattr(args, name) for name in CLI_OPTIONS if getattr(args, name, None) is not None}
     file_format = getattr(args, "format", "csv")
     out_dir = Path(args.out_dir)
-    _refuse_unwritable(out_dir)
+    refuse_unwritable(out_dir, folder=True)
     if out_dir.is_dir() and any(out_dir.iterdir()) and not getattr(args, "force", False):
         # Fail before minutes of generation, not after.
         raise FitrankInputError(f"{out_dir} exists and is not empty; choose a new folder or pass --force")

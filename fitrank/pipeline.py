@@ -23,9 +23,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fitrank.atomic import staged_folder, unwritable_reason
+from fitrank.atomic import refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
-from fitrank.errors import ConfigError, FitrankInputError
+from fitrank.errors import FitrankInputError
 from fitrank.graph import SPLITS, Dataset
 from fitrank.metrics import kendall_tau_topk, l1_topk, top_k
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
@@ -200,9 +200,9 @@ def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = N
         config = replace(config, output=replace(config.output, folder=Path(out).resolve()))
     run_dir = Path(config.output.folder)
     if write:
-        refuse_unwritable(run_dir, "output.folder", folder=True)
+        refuse_unwritable(run_dir, folder=True, key="output.folder")
         if config.reduction.model:
-            refuse_unwritable(model_path(config), "reduction.model", folder=False)
+            refuse_unwritable(model_path(config), folder=False, key="reduction.model")
     timings = {}
     tick = time.perf_counter()
     dataset, problem = prepare(config)
@@ -346,13 +346,6 @@ def _json_ready(value):
     if isinstance(value, np.bool_):
         return bool(value)
     return value
-
-
-def refuse_unwritable(target: Path, key: str, *, folder: bool) -> None:
-    """Raise ConfigError naming ``key`` when ``target`` cannot be written (see :func:`unwritable_reason`)."""
-    reason = unwritable_reason(target, folder=folder)
-    if reason is not None:
-        raise ConfigError(key, reason)
 
 
 def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
