@@ -25,7 +25,7 @@ import pandas as pd
 
 from fitrank.atomic import refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
-from fitrank.errors import FitrankInputError
+from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.graph import SPLITS, Dataset
 from fitrank.metrics import kendall_tau_topk, l1_topk, top_k
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
@@ -75,13 +75,12 @@ def prepare(config: Config) -> tuple[Dataset, PageRankProblem]:
     options = {}
     if config.weighting.bound is not None:
         if config.weighting.kind == "mixture":
-            raise FitrankInputError("config key 'weighting.bound': the mixture samples its simplex and takes no "
-                                    "bound; remove the key")
+            raise ConfigError("weighting.bound", "the mixture samples its simplex and takes no bound; remove the key")
         options["bound"] = config.weighting.bound
     try:
         weighting = make_weighting(config.weighting.kind, graph, **options)
     except ValueError as err:
-        raise FitrankInputError(f"config key 'weighting.kind': {err}") from None
+        raise ConfigError("weighting.kind", str(err)) from None
     teleport = np.full(graph.n, 1.0 / graph.n) if config.graph.teleport == "uniform" else graph.teleport
     problem = PageRankProblem(graph, weighting, config.graph.damping, teleport, config.graph.dangling)
     return dataset, problem
