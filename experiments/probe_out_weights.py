@@ -33,6 +33,7 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+from scipy.special import softmax
 
 import _timing  # noqa: F401  (puts the checkout on sys.path)
 
@@ -65,11 +66,6 @@ def deim_errors(train: np.ndarray, test: np.ndarray, relative: bool) -> dict:
         gap = np.abs(approx - test) / (np.abs(test) if relative else 1.0)
         errors[q] = float(gap.max())
     return {"singular_values": [float(x) for x in s[:41] / s[0]], "max_error": errors}
-
-
-def softmax(theta: np.ndarray) -> np.ndarray:
-    e = np.exp(theta - theta.max())
-    return e / e.sum()
 
 
 def feature_log_out_weights(problem: PageRankProblem, rng) -> dict:
