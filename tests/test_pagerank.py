@@ -543,3 +543,15 @@ def test_a_non_finite_theta_is_refused_before_any_solve(small):
     graph, weighting = small
     with pytest.raises(FitrankInputError, match=r"theta has a non-finite entry \(scale:.* = nan\)"):
         pagerank(graph, weighting, np.array([0.0, np.nan]))
+
+
+def test_a_non_finite_transition_is_refused_before_any_solve():
+    # The loader and build_graph refuse non-finite features; a Graph assembled by hand is not
+    # checked, and the operator must still stop it rather than let a solver iterate on NaN.
+    graph = random_typed_graph(30, n=10, num_relations=2, num_features=1)
+    features = graph.features.copy()
+    features[0, 0] = np.inf
+    unchecked = replace(graph, features=features)
+    weighting = make_weighting("features", unchecked)
+    with pytest.raises(FitrankInputError, match="features weighting gives a non-finite transition probability"):
+        pagerank(unchecked, weighting, weighting.theta0 + 0.1)
