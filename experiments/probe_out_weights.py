@@ -74,7 +74,8 @@ def feature_log_out_weights(problem: PageRankProblem, rng) -> dict:
     sources = np.sort(rng.choice(candidates, size=min(2000, candidates.size), replace=False))
     ids, _ = graph.out_edges_of(sources)  # grouped by source, in the order of ``sources``
     starts = np.concatenate([[0], np.cumsum(graph.out_degree()[sources])[:-1]])
-    log_base, feat = weighting.tables["log_base"][ids], weighting.tables["feat"][:, ids]
+    log_base = np.log(graph.base[ids])
+    feat = ((graph.features[ids] - weighting.feature_center) / weighting.feature_scale).T
 
     def log_out_weight(theta):
         return np.logaddexp.reduceat(log_base + theta @ feat, starts)

@@ -76,7 +76,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
     from fitrank.config import load_config
     from fitrank.atomic import refuse_unwritable
     from fitrank.pipeline import model_path, prepare, reduction_settings
-    from fitrank.reduced import build_reduced_model
+    from fitrank.regions import build_model
     from fitrank.snapshots import local_executor
 
     config = load_config(args.config, args.overrides)
@@ -86,15 +86,18 @@ def _cmd_build(args: argparse.Namespace) -> int:
     workers = config.reduction.workers
     pool = local_executor(workers) if workers > 1 else None
     try:
-        model = build_reduced_model(problem, reduction_settings(config), executor=pool)
+        model = build_model(problem, reduction_settings(config), executor=pool)
     finally:
         if pool is not None:
             pool.shutdown()
     path = model.save(model_path(config))
-    info, s = model.info, model.basis.singular_values
-    decay = ", ".join(f"s{i + 1}/s1={s[i] / s[0]:.1e}" for i in sorted({0, 4, 9, 19, 49, model.rank - 1}) if i < s.size)
-    print(f"reduced model: {model.method}, k = {model.rank} (lost energy {model.basis.lost_energy:.1e}), "
+    info, s = model.info, model.info["singular_values"]
+    decay = ", ".join(f"s{i + 1}/s1={s[i] / s[0]:.1e}" for i in sorted({0, 4, 9, 19, 49, model.rank - 1}) if i < len(s))
+    print(f"reduced model: {model.method}, k = {model.rank} (lost energy {info['lost_energy']:.1e}), "
           f"{info['samples']} samples")
+    if "regions" in info:
+        print(f"regions: {len(info['regions'])}, k per region "
+              f"{', '.join(str(region['k']) for region in info['regions'])}; singular values of the largest:")
     print(f"singular values: {decay}")
     if model.method == "interpolation":
         print(f"rows chosen: {info['rows']}, edges touched: {info['edges_touched']} "

@@ -120,6 +120,9 @@ class ReductionSection:
     seed: int = _key(_REDUCTION.seed, "seed of the parameter sampling", "int", low=0)
     snapshot_tol: float = _key(_REDUCTION.snapshot_tol, "certified L1 error of each snapshot solve (the "
                                "basis keeps less detail than this)", "float", low=0.0, low_open=True)
+    regions: int = _key(_REDUCTION.regions, "local models, each with its own basis for one region of the "
+                                            "parameter domain (1 = one global model); more regions reach the "
+                                            "same accuracy with a smaller k, given more samples", "int", low=1)
     workers: int = _key(1, "processes for the full solves of the offline stage", "int", low=1)
     model: Path | None = _key(None, "reduced-model file to reuse or create; \"\" = model.npz in the run folder",
                               "path?")
@@ -431,6 +434,9 @@ def _check_together(config: Config, where: str | None) -> None:
     if red.rank is not None and red.rank > red.samples:
         raise ConfigError("reduction.rank", f"rank {red.rank} exceeds samples {red.samples}: the basis cannot "
                                             "be larger than the snapshot set", where)
+    if red.regions > red.samples:
+        raise ConfigError("reduction.regions", f"{red.regions} regions need at least as many samples (got "
+                                               f"{red.samples})", where)
     if red.rank is not None and red.rows is not None and red.rows < red.rank:
         raise ConfigError("reduction.rows", f"rows {red.rows} must be >= rank {red.rank}", where)
     if train.batch_pairs > 0 and train.optimizer == "lbfgs":

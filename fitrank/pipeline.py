@@ -30,7 +30,8 @@ from fitrank.graph import SPLITS, Dataset
 from fitrank.metrics import kendall_tau_topk, l1_topk, top_k
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
 from fitrank.pagerank import PageRankProblem, certified_bound, solve_operator
-from fitrank.reduced import ReducedModel, ReductionSettings, build_reduced_model, enrich, load_reduced_model
+from fitrank.reduced import ReducedModel, ReductionSettings
+from fitrank.regions import RegionalModel, build_model, enrich_model, load_model
 from fitrank.snapshots import local_executor
 from fitrank.tables import load_dataset
 from fitrank.train import TrainResult, train_full, train_reduced
@@ -61,7 +62,7 @@ class FitResult:
     x: np.ndarray
     history: pd.DataFrame
     problem: PageRankProblem
-    model: ReducedModel | None = None
+    model: ReducedModel | RegionalModel | None = None
     run_dir: Path | None = None
     dataset: Dataset | None = field(default=None, repr=False)
 
@@ -91,7 +92,7 @@ def reduction_settings(config: Config) -> ReductionSettings:
     return ReductionSettings(method=r.method, samples=r.samples, rank=r.rank, energy=r.energy,
                              max_rank=r.max_rank, rows=r.rows,
                              gamma=r.gamma, edge_budget=r.edge_budget or None, seed=r.seed,
-                             snapshot_tol=r.snapshot_tol,
+                             snapshot_tol=r.snapshot_tol, regions=r.regions,
                              snapshot_path=str(r.snapshot_file) if r.snapshot_file else None)
 
 
@@ -102,13 +103,13 @@ def model_path(config: Config) -> Path:
 
 
 def obtain_model(config: Config, problem: PageRankProblem, *, executor=None, progress: bool = True,
-                 log=print) -> tuple[ReducedModel, bool]:
+                 log=print) -> tuple[ReducedModel | RegionalModel, bool]:
     """(model, reused): the saved model when it matches ``problem``, else a new one."""
     path = model_path(config)
     settings = reduction_settings(config)
     if path.is_file():
         try:
-            model = load_reduced_model(path, problem)
+            model = load_model(path, problem)
         except FitrankInputError as err:
             log(f"not reusing {path}: {err}")
         else:
@@ -119,7 +120,7 @@ def obtain_model(config: Config, problem: PageRankProblem, *, executor=None, pro
     own_pool = executor is None and config.reduction.workers > 1
     pool = local_executor(config.reduction.workers) if own_pool else executor
     try:
-        model = build_reduced_model(problem, settings, executor=pool, progress=progress)
+        model = build_model(problem, settings, executor=pool, progress=progress)
     finally:
         if own_pool:
             pool.shutdown()
@@ -127,12 +128,12 @@ def obtain_model(config: Config, problem: PageRankProblem, *, executor=None, pro
 
 
 def _same_build(a: ReductionSettings, b: ReductionSettings) -> bool:
-    keys = ("method", "samples", "rank", "energy", "max_rank", "rows", "gamma", "edge_budget", "seed")
+    keys = ("method", "samples", "rank", "energy", "max_rank", "rows", "gamma", "edge_budget", "seed", "regions")
     return all(getattr(a, k) == getattr(b, k) for k in keys)
 
 
 def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, config: Config,
-               model: ReducedModel | None, spec: ObjectiveSpec) -> tuple[dict, np.ndarray]:
+               model: ReducedModel | RegionalModel | None, spec: ObjectiveSpec) -> tuple[dict, np.ndarray]:
     """Compare the reduced model with a full solve at ``theta``.
 
     Returns:
@@ -260,7 +261,7 @@ def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = N
             if check["passed"] or round_no == config.check.enrich_rounds:
                 break
             tick = time.perf_counter()
-            model = enrich(model, _enrichment_points(result, theta, config.check.path_points))
+            model = enrich_model(model, _enrichment_points(result, theta, config.check.path_points))
             timings["enrich_s"] = timings.get("enrich_s", 0.0) + time.perf_counter() - tick
         # a round that took no step (theta0 already optimal) has no step time
         timed = [t for t in step_times if np.isfinite(t)]
@@ -289,7 +290,8 @@ def _enrichment_points(result: TrainResult, theta: np.ndarray, path_points: int)
     return unique
 
 
-def _round_record(round_no: int, result: TrainResult, check: dict, model: ReducedModel | None) -> dict:
+def _round_record(round_no: int, result: TrainResult, check: dict,
+                  model: ReducedModel | RegionalModel | None) -> dict:
     return {
         "round": round_no,
         "steps": result.steps,
@@ -329,7 +331,7 @@ def _record(config, dataset, problem, theta, rounds, timings, model, reused) -> 
         record["outside_sampled_box"] = [name for name, out in zip(weighting.param_names, outside) if out]
         record["model"] = {"method": model.method, "k": model.rank, "rows": model.info.get("rows", 0),
                            "edges_touched": model.info.get("edges_touched", 0), "reused": reused,
-                           "fingerprint": problem.fingerprint(), "lost_energy": model.basis.lost_energy}
+                           "fingerprint": problem.fingerprint(), "lost_energy": model.info["lost_energy"]}
     return _json_ready(record)
 
 
@@ -380,7 +382,7 @@ def _write_plots(result: FitResult, folder: Path) -> None:
     plot_training(result.history, folder / "loss.png")
     plot_weights(weighting.param_names, result.theta, weighting.theta0, folder / "weights.png")
     if result.model is not None:
-        plot_singular_values(result.model.basis.singular_values, folder / "singular_values.png",
+        plot_singular_values(np.asarray(result.model.info["singular_values"]), folder / "singular_values.png",
                              rank=result.model.rank)
 
 

@@ -61,6 +61,11 @@ class ReductionSettings:
         detail than this anyway (lost energy 1e-10 is a relative 2-norm error of
         about 1e-5), so tighter solves would only cost mat-vecs.
       snapshot_path: file for a memory-mapped snapshot matrix (None: in memory).
+      regions: number of local models (1: one global model). With R > 1 the
+        samples are grouped into R regions of the parameter domain and each
+        region gets its own basis, rows and online solve
+        (:mod:`fitrank.regions`); ``rank``, ``energy`` and ``rows`` then apply
+        per region.
     """
 
     method: str = "auto"
@@ -75,6 +80,7 @@ class ReductionSettings:
     seed: int = 0
     snapshot_tol: float = 1e-8
     snapshot_path: str | None = None
+    regions: int = 1
 
     def resolved_gamma(self, weighting) -> float:
         if self.gamma is not None:
@@ -126,8 +132,14 @@ class Scorer:
         Returns:
           A :class:`Scorer` with the same ``fn`` and ``nodes`` whose values are (Q,).
         """
-        columns = np.asarray(self.arrays["readout"])
-        readout = np.ascontiguousarray(scale * (columns[:, np.asarray(first)] - columns[:, np.asarray(second)]))
+        first, second = np.asarray(first), np.asarray(second)
+
+        def differenced(columns):
+            columns = np.asarray(columns)
+            return np.ascontiguousarray(scale * (columns[:, first] - columns[:, second]))
+
+        # a regional model holds one readout per region, hence the tree map
+        readout = jax.tree_util.tree_map(differenced, self.arrays["readout"])
         return Scorer(self.fn, {**self.arrays, "readout": jax.device_put(readout)}, self.nodes)
 
 
@@ -207,19 +219,16 @@ class ReducedModel:
           the path written.
         """
         path = os.fspath(path)
-        meta = {
-            "format": FORMAT_VERSION,
-            "fingerprint": self.problem.fingerprint(),
-            "method": self.method,
-            "settings": asdict(self.settings),
-            "info": self.info,
-            "param_names": list(self.problem.weighting.param_names),
-        }
+        meta = model_meta(self.problem, self.settings, self.method, self.info)
         with staged_file(path, suffix=".npz") as temp:
-            np.savez(temp, meta=np.array(json.dumps(meta)), vectors=self.basis.vectors,
-                     singular_values=self.basis.singular_values, lost_energy=np.array(self.basis.lost_energy),
-                     rows=self.rows, thetas=self.thetas)
+            np.savez(temp, meta=np.array(json.dumps(meta)), **self.stored_arrays())
         return path
+
+    def stored_arrays(self, prefix: str = "") -> dict[str, np.ndarray]:
+        """What a saved file holds of this model, under names starting with ``prefix``."""
+        arrays = {"vectors": self.basis.vectors, "singular_values": self.basis.singular_values,
+                  "lost_energy": np.array(self.basis.lost_energy), "rows": self.rows, "thetas": self.thetas}
+        return {prefix + name: value for name, value in arrays.items()}
 
 
 def _coefficient_fn(problem: PageRankProblem, method: str) -> Callable:
@@ -283,7 +292,19 @@ def build_reduced_model(problem: PageRankProblem, settings: ReductionSettings = 
       rows, edges touched and offline timings.
     """
     method = settings.resolved_method(problem.weighting.affine)
-    timings = {}
+    thetas, snapshots, timings = sample_and_solve(problem, settings, executor=executor, progress=progress)
+    start = time.perf_counter()
+    basis = pod_basis(snapshots, rank=settings.rank, energy=settings.energy, max_rank=settings.max_rank)
+    timings["basis_s"] = time.perf_counter() - start
+    return _assemble(problem, settings, basis, thetas, method, timings)
+
+
+def sample_and_solve(problem: PageRankProblem, settings: ReductionSettings, *, executor: Executor | None = None,
+                     progress: bool = True) -> tuple[np.ndarray, np.ndarray, dict]:
+    """(thetas (m, p), snapshots (n, m), timings): the offline stage's sampled full solves.
+
+    The snapshots are a memory-mapped file when ``settings.snapshot_path`` is set.
+    """
     start = time.perf_counter()
     thetas = problem.weighting.sample(settings.samples, seed=settings.seed)
     out = None
@@ -292,11 +313,13 @@ def build_reduced_model(problem: PageRankProblem, settings: ReductionSettings = 
                                         shape=(problem.graph.n, thetas.shape[0]))
     snapshots = solve_snapshots(problem, thetas, tol=settings.snapshot_tol, executor=executor, out=out,
                                 progress=progress)
-    timings["snapshots_s"] = time.perf_counter() - start
-    start = time.perf_counter()
-    basis = pod_basis(snapshots, rank=settings.rank, energy=settings.energy, max_rank=settings.max_rank)
-    timings["basis_s"] = time.perf_counter() - start
-    return _assemble(problem, settings, basis, thetas, method, timings)
+    return thetas, snapshots, {"snapshots_s": time.perf_counter() - start}
+
+
+def model_meta(problem: PageRankProblem, settings: ReductionSettings, method: str, info: dict) -> dict:
+    """The JSON header of a saved model file."""
+    return {"format": FORMAT_VERSION, "fingerprint": problem.fingerprint(), "method": method,
+            "settings": asdict(settings), "info": info, "param_names": list(problem.weighting.param_names)}
 
 
 def enrich(model: ReducedModel, thetas: np.ndarray, *, executor: Executor | None = None,
@@ -310,11 +333,22 @@ def enrich(model: ReducedModel, thetas: np.ndarray, *, executor: Executor | None
     start = time.perf_counter()
     new = solve_snapshots(model.problem, thetas, tol=model.settings.snapshot_tol, executor=executor,
                           progress=progress)
+    return extend_model(model, thetas, new, seconds=time.perf_counter() - start)
+
+
+def extend_model(model: ReducedModel, thetas: np.ndarray, snapshots: np.ndarray, *,
+                 seconds: float = 0.0) -> ReducedModel:
+    """The model with already solved ``snapshots`` (n, m_new) at ``thetas`` (m_new, p) added.
+
+    ``seconds``: time already spent on them, for the timings report.
+    """
+    start = time.perf_counter()
+    new = snapshots
     settings = model.settings
     max_rank = max(settings.max_rank, model.rank + thetas.shape[0]) if settings.rank is None else None
     basis = extend_basis(model.basis, new, rank=None if settings.rank is None else model.rank + thetas.shape[0],
                          energy=settings.energy, max_rank=max_rank)
-    timings = {"snapshots_s": 0.0, "enrich_s": time.perf_counter() - start}
+    timings = {"snapshots_s": 0.0, "enrich_s": seconds + time.perf_counter() - start}
     return _assemble(model.problem, settings, basis, np.vstack([model.thetas, thetas]), model.method, timings)
 
 
@@ -327,10 +361,19 @@ def load_reduced_model(path, problem: PageRankProblem) -> ReducedModel:
       FitrankInputError: the file is missing or not a fitrank model.
     """
     path = os.fspath(path)
+    meta, stored = read_model_file(path, problem)
+    if meta.get("regions", 1) != 1:
+        raise FitrankInputError(f"{path}: holds {meta['regions']} regional models; load it with "
+                                "fitrank.regions.load_model")
+    return model_from_stored(problem, meta, stored, path=path)
+
+
+def read_model_file(path: str, problem: PageRankProblem) -> tuple[dict, dict[str, np.ndarray]]:
+    """(meta, arrays) of a saved model file, after checking its format and fingerprint against ``problem``."""
     try:
         with np.load(path, allow_pickle=False) as data:
             meta = json.loads(str(data["meta"]))
-            stored = {name: data[name] for name in ("vectors", "singular_values", "lost_energy", "rows", "thetas")}
+            stored = {name: data[name] for name in data.files if name != "meta"}
     except (OSError, KeyError, ValueError) as err:
         raise FitrankInputError(f"{path}: not a readable fitrank reduced model ({err})") from None
     if meta.get("format") != FORMAT_VERSION:
@@ -340,9 +383,19 @@ def load_reduced_model(path, problem: PageRankProblem) -> ReducedModel:
         raise ModelMismatchError(
             f"{path}: this reduced model was built for other data or settings (fingerprint {meta['fingerprint']}, "
             f"current {expected}); rebuild it with 'fitrank build' or point to the matching model")
+    return meta, stored
+
+
+def model_from_stored(problem: PageRankProblem, meta: dict, stored: dict[str, np.ndarray], *, prefix: str = "",
+                      info: dict | None = None, path: str | None = None) -> ReducedModel:
+    """The model whose :meth:`ReducedModel.stored_arrays` (under ``prefix``) are in ``stored``."""
+    try:
+        vectors, singular_values, lost_energy, rows, thetas = (
+            stored[prefix + name] for name in ("vectors", "singular_values", "lost_energy", "rows", "thetas"))
+    except KeyError as err:
+        raise FitrankInputError(f"{path}: not a readable fitrank reduced model (no array {err})") from None
     settings = ReductionSettings(**meta["settings"])
-    basis = PodBasis(stored["vectors"], stored["singular_values"], float(stored["lost_energy"]))
-    timings = {"load_s": 0.0}
-    model = _assemble(problem, settings, basis, stored["thetas"], meta["method"], timings,
-                      rows=stored["rows"] if meta["method"] == "interpolation" else None)
-    return replace(model, info=dict(meta["info"], loaded_from=path))
+    basis = PodBasis(vectors, singular_values, float(lost_energy))
+    model = _assemble(problem, settings, basis, thetas, meta["method"], {"load_s": 0.0},
+                      rows=rows if meta["method"] == "interpolation" else None)
+    return replace(model, info=dict(meta["info"] if info is None else info, loaded_from=path))

@@ -124,6 +124,29 @@ class Weighting:
             return logw - logw.mean(axis=1, keepdims=True)
         return self.lower + u * (self.upper - self.lower)
 
+    def coordinates(self, theta, xp=np):
+        """Where theta sits in the sampled domain, in that domain's own units.
+
+        Distances between these coordinates say which parameter points give
+        similar walks, which is what grouping points into regions needs. The
+        mixture: its weights softmax(theta), on the simplex it samples. The
+        scale weighting: theta less its mean (a common shift leaves the walk
+        unchanged) over the box width. The feature weighting: theta over the box
+        width.
+
+        Args:
+          theta: (..., p) parameters.
+          xp: ``numpy`` or ``jax.numpy``.
+
+        Returns:
+          (..., p) coordinates.
+        """
+        if self.kind == "mixture":
+            return _softmax(xp.asarray(theta), xp)
+        if self.kind == "scale":
+            theta = theta - theta.mean(axis=-1, keepdims=True)
+        return theta / (self.upper - self.lower)
+
     def named(self, theta) -> dict[str, float]:
         """``{parameter name: value}`` for a (p,) theta."""
         return {name: float(value) for name, value in zip(self.param_names, np.asarray(theta))}
@@ -287,10 +310,7 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
     if graph.features.shape[1] == 0:
         raise FitrankInputError("the features weighting needs numeric edge feature columns; the edge table has none")
     center, spread, standard = _standardise(graph.features)
-    # standardised features stored (f, E): theta @ feat reads each row once, where XLA's
-    # (E, f) @ (f,) product took about twice as long
-    feat = np.ascontiguousarray(standard.T)
-    log_base = np.log(graph.base)
+    shifted = _per_source_shifted(np.log(graph.base), standard, graph.src, graph.n)
 
     def local_tables(edge_ids):
         edge_ids = np.asarray(edge_ids, dtype=np.int64)
@@ -300,17 +320,16 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         lookup[out_ids] = np.arange(out_ids.size)
         target = lookup[edge_ids]
         return {
-            "log_base": log_base[out_ids],
-            "feat": feat[:, out_ids],
+            **{name: values[..., out_ids] for name, values in shifted.items()},
             "slot": out_slot,
             "slots": np.zeros(sources.size),
             "target": target,
             "target_slot": out_slot[target],
         }
 
-    f = feat.shape[0]
+    f = standard.shape[1]
     bound = 0.7 / np.sqrt(f) if bound is None else float(bound)
-    full = {"log_base": log_base, "feat": feat, "slot": graph.src, "slots": np.zeros(graph.n)}
+    full = {**shifted, "slot": graph.src, "slots": np.zeros(graph.n)}
     return Weighting(
         kind="features",
         param_names=tuple(f"feat:{name}" for name in graph.feature_names),
@@ -356,10 +375,12 @@ def _standardise(features: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarr
 
 
 def _softmax(theta, xp=jnp):
-    if xp is jnp:
-        return jax.nn.softmax(theta)
-    shifted = np.exp(theta - theta.max())
-    return shifted / shifted.sum()
+    return jax.nn.softmax(theta) if xp is jnp else _softmax_rows(theta)
+
+
+def _softmax_rows(theta: np.ndarray) -> np.ndarray:
+    shifted = np.exp(theta - theta.max(axis=-1, keepdims=True))
+    return shifted / shifted.sum(axis=-1, keepdims=True)
 
 
 def _constant(value, xp):
@@ -391,17 +412,72 @@ def _scale_transition(theta, tables, xp=jnp):
     return tables["base"] * scale[tables["rel"]] / out[tables["slot"]]
 
 
+def _per_source_shifted(log_base: np.ndarray, standard: np.ndarray, src: np.ndarray, n: int) -> dict:
+    """The feature weighting's tables: log-weights and features less per-source extremes.
+
+    With l_e = log b_e - max_{e' out of j} log b_e', h_ef = phi_ef - max_j phi_f and
+    g_ef = phi_ef - min_j phi_f (j the source of e), the score
+    s_e(theta) = l_e + sum_f theta_f (h_ef if theta_f > 0 else g_ef)
+    is log b_e + theta . phi_e less an upper bound of its source's largest
+    score: exp(s_e) never overflows, and no per-source maximum is needed online
+    (a scatter-max was a third of the local transition's time). Shifts per
+    source cancel in the normalisation, exactly (the derivative too).
+
+    Args:
+      log_base: (E,) log base weights.
+      standard: (E, f) standardised features.
+      src: (E,) sources.
+      n: node count.
+
+    Returns:
+      ``{"log_base": (E,), "feat_hi": (f, E), "feat_lo": (f, E)}`` (stored (f, E):
+      one row per feature reads contiguously).
+    """
+    def extreme(values, pick, start):
+        out = np.full(n, start)
+        pick.at(out, src, values)
+        return out[src]
+
+    features = np.ascontiguousarray(standard.T)
+    return {
+        "log_base": log_base - extreme(log_base, np.maximum, -np.inf),
+        "feat_hi": np.stack([row - extreme(row, np.maximum, -np.inf) for row in features]).reshape(features.shape),
+        "feat_lo": np.stack([row - extreme(row, np.minimum, np.inf) for row in features]).reshape(features.shape),
+    }
+
+
+# below this, a source's shifted total would lose digits to subnormals: the bound was too loose
+_SMALLEST_TOTAL = 1e-290
+
+
 def _feature_transition(theta, tables, xp=jnp):
-    score = tables["log_base"] + theta @ tables["feat"]
+    score = tables["log_base"]
+    for f in range(tables["feat_hi"].shape[0]):  # a few fused row updates; XLA's (f,) @ (f, E) dot was slower
+        score = score + theta[f] * xp.where(theta[f] > 0, tables["feat_hi"][f], tables["feat_lo"][f])
+    weight = xp.exp(score)
     slot, num = tables["slot"], tables["slots"].shape[0]
-    peak = _constant(_segment_max(score, slot, num, xp), xp)
-    shifted = xp.exp(score - peak[slot])
-    total = _segment_sum(shifted, slot, num, xp)
+    total = _segment_sum(weight, slot, num, xp)
+    fits = xp.min(total) >= _SMALLEST_TOTAL if num else True
+    if xp is jnp:
+        return jax.lax.cond(fits, _normalised_weights, _feature_transition_rescaled, weight, total, score, tables)
+    return (_normalised_weights if fits else _feature_transition_rescaled)(weight, total, score, tables, xp)
+
+
+def _normalised_weights(weight, total, score, tables, xp=jnp):
+    """p from exp(score) and the per-source totals."""
+    slot = tables["slot"]
     if "target" not in tables:
-        return shifted / total[slot]
+        return weight / total[slot]
     # local tables: the out-edges only normalise; p is needed on the rows' in-edges alone
-    target, target_slot = tables["target"], tables["target_slot"]
-    return xp.exp(score[target] - peak[target_slot]) / total[target_slot]
+    return weight[tables["target"]] / total[tables["target_slot"]]
+
+
+def _feature_transition_rescaled(weight, total, score, tables, xp=jnp):
+    """p with each source's scores shifted by their maximum: for theta so far out that the bound underflows."""
+    slot, num = tables["slot"], tables["slots"].shape[0]
+    score = score - _constant(_segment_max(score, slot, num, xp), xp)[slot]
+    weight = xp.exp(score)
+    return _normalised_weights(weight, _segment_sum(weight, slot, num, xp), score, tables, xp)
 
 
 def row_cost(graph: Graph, weighting: Weighting) -> np.ndarray:

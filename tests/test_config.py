@@ -133,6 +133,7 @@ def test_more_wrong_values():
         (_raw(reduction={"method": "galerkin"}), "reduction.method", "affine"),
         (_raw(reduction={"rank": 50, "rows": 20}), "reduction.rows", ">= rank"),
         (_raw(reduction={"rank": 50, "samples": 20}), "reduction.rank", "exceeds samples"),
+        (_raw(reduction={"regions": 30, "samples": 20}), "reduction.regions", "need at least as many samples"),
         (_raw(training={"batch_pairs": 64}), "training.batch_pairs", "adam or sgd"),
     ]:
         error = _error(raw)

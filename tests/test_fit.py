@@ -148,3 +148,21 @@ def test_bad_config_exits_2_with_one_line_and_leaves_earlier_run_intact(tmp_path
     assert len(err.splitlines()) == 1 and key in err and "Traceback" not in err
     assert json.loads((out / "result.json").read_text()) == {"earlier": True}
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".out")] == []
+
+
+def test_a_regional_model_fits_end_to_end_and_is_reused(tmp_path, capsys):
+    # Recovery of a known ground truth as above, through one local model per region of the domain.
+    config = _config(tmp_path, "scale")
+    settings = ["reduction.samples=96", "reduction.regions=3", "training.steps=60"]
+    assert main(["build", str(config)] + [arg for setting in settings for arg in ("--set", setting)]) == 0
+    assert "regions: 3, k per region" in capsys.readouterr().out
+    result = fit(config, overrides=settings + ["output.plots=false"], progress=False, log=lambda m: None)
+    assert result.record["model"]["reused"] is True
+    assert len(result.model.parts) == 3
+    _, truth, _ = generated("scale", noise=0.05)
+    assert result.record["metrics"]["full"]["test"]["accuracy"] >= _truth_accuracy(result, truth, "test") - 0.01
+    assert result.record["check"]["passed"]
+    # other regional settings are not reused
+    other = fit(config, overrides=["reduction.samples=96", "reduction.regions=2", "output.plots=false",
+                                   "training.steps=5"], write=False, progress=False, log=lambda m: None)
+    assert other.record["model"]["reused"] is False and len(other.model.parts) == 2

@@ -15,6 +15,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 import scipy.sparse as sp
+import scipy.special
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy import stats
@@ -391,3 +392,28 @@ def test_hub_in_neighbour_makes_a_row_expensive_only_without_closed_form():
     # scipy's sparse pattern gives the same in-degrees (independent count).
     pattern = sp.coo_matrix((np.ones(51), (dst, src)), shape=(n, n)).tocsr()
     np.testing.assert_array_equal(row_cost(graph, make_weighting("mixture", graph)), np.diff(pattern.indptr))
+
+
+@pytest.mark.parametrize("magnitude", [0.3, 30.0, 3000.0])
+def test_feature_transition_is_each_sources_softmax_however_far_theta_goes(magnitude):
+    # p_e = softmax over the source's out-edges of log b_e + theta . phi_e, by the reference
+    # implementation (scipy.special.softmax per source). At 3000 the shift bound of the fast
+    # path underflows (scores thousands below it) and the exact per-source maximum takes over.
+    graph = random_typed_graph(7, n=40, num_features=2)
+    weighting = make_weighting("features", graph)
+    theta = magnitude * np.array([1.0, -0.6])
+    standard = (graph.features - weighting.feature_center) / weighting.feature_scale
+    score = np.log(graph.base) + standard @ theta
+    expected = np.zeros(graph.num_edges)
+    for node in np.unique(graph.src):
+        mine = graph.src == node
+        expected[mine] = scipy.special.softmax(score[mine])
+    # exp turns the scores' absolute rounding (eps |theta| |phi|, about 1e-12 at 3000) into relative error
+    rtol = max(1e-13, 1e-15 * magnitude)
+    np.testing.assert_allclose(weighting.transition(theta, weighting.tables, xp=np), expected, rtol=rtol,
+                               atol=1e-300)
+    np.testing.assert_allclose(np.asarray(jax.jit(weighting.transition)(theta, weighting.tables)), expected,
+                               rtol=rtol, atol=1e-300)
+    edge_ids = np.arange(1, graph.num_edges, 3)
+    np.testing.assert_allclose(np.asarray(weighting.transition(theta, weighting.local_tables(edge_ids))),
+                               expected[edge_ids], rtol=rtol, atol=1e-300)
