@@ -13,6 +13,10 @@ of both interpolated weightings: 12 regions from 512 samples, k = 50 per region
 (r = 100), the feature weighting's rows chosen with gamma = 16 (half the edges
 of the default 4, at the same accuracy on these graphs).
 
+All timings run side by side at the end: in each of 5 rounds every fresh point
+is solved in full and every reduced model is run, so a slow spell of the
+machine hits all of them alike; the table reports medians over the rounds.
+
     python experiments/bench_reduced.py            # about 2M edges
     python experiments/bench_reduced.py --quick    # small, under a minute
 
@@ -31,7 +35,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from _timing import median_seconds  # noqa: E402  (also puts the checkout on sys.path)
+import _timing  # noqa: E402,F401  (puts the checkout on sys.path)
 
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
 from fitrank.metrics import kendall_tau_topk, l1_topk  # noqa: E402
@@ -42,31 +46,32 @@ from fitrank.tables import load_dataset  # noqa: E402
 from fitrank.weightings import make_weighting  # noqa: E402
 
 
-def online_seconds(model, nodes, thetas, repeats=200, burst=10) -> tuple[float, float]:
-    """(cycling, repeated): seconds per evaluation, going round the points, and ``burst`` calls at each.
+def scorer_seconds(fn, arrays, points, passes=3, burst=10) -> tuple[float, float]:
+    """(going round, repeated): seconds per evaluation over ``points``.
 
-    Going round is the worst case for a regional model (each call may run
-    another region than the last, with its arrays out of cache); repeated calls
-    at one point are what training and interactive use do (consecutive steps
-    stay in one region). For one global model the two agree up to noise.
+    Going round the points is the worst case for a regional model (each call
+    may run another region than the last, its arrays out of cache); ``burst``
+    calls at each point are what training and interactive use do (consecutive
+    steps stay in one region). For one global model the two agree up to noise.
     """
+    for point in points:  # untimed: the full solves run between rounds leave every cache cold
+        fn(point, arrays).block_until_ready()
+    start = time.perf_counter()
+    for _ in range(passes):
+        for point in points:
+            fn(point, arrays).block_until_ready()
+    middle = time.perf_counter()
+    for point in points:
+        for _ in range(burst):
+            fn(point, arrays).block_until_ready()
+    end = time.perf_counter()
+    return (middle - start) / (passes * len(points)), (end - middle) / (burst * len(points))
+
+
+def compiled_scorer(model, nodes):
     scorer = model.scorer(nodes)
     fn = jax.jit(scorer.fn)
-    points = [jnp.asarray(t) for t in thetas]
-    fn(points[0], scorer.arrays).block_until_ready()
-
-    def cycling():
-        for point in points:
-            fn(point, scorer.arrays).block_until_ready()
-
-    def repeated():
-        for point in points:
-            for _ in range(burst):
-                fn(point, scorer.arrays).block_until_ready()
-
-    rounds = max(3, repeats // len(points))
-    return (median_seconds(cycling, rounds) / len(points),
-            median_seconds(repeated, max(3, rounds // burst)) / (len(points) * burst))
+    return fn, scorer.arrays
 
 
 def accuracy(model, thetas, exact):
@@ -94,41 +99,35 @@ def main() -> None:
     fresh_count = 6 if args.quick else args.fresh
     regions = args.regions or (4 if args.quick else 12)
     regional_samples = args.regional_samples or (96 if args.quick else 512)
+    rounds = 3 if args.quick else 5
     rng = np.random.default_rng(args.seed)
 
-    results = {}
-    lines = []
-    edges_count = None
+    kinds, entries = {}, []
     folder = Path(tempfile.mkdtemp(prefix="fitrank-bench-"))
     for kind, method in (("mixture", "galerkin"), ("scale", "interpolation"), ("features", "interpolation")):
         edges, pairs, truth = generate_dataset(nodes, args.seed, kind, relations=4, features=3)
         write_dataset(folder / kind, edges, pairs, truth)
         dataset = load_dataset(folder / kind / "edges.csv", folder / kind / "pairs.csv")
         graph = dataset.graph
-        edges_count = graph.num_edges
         problem = PageRankProblem(graph, make_weighting(kind, graph))
         fresh = problem.weighting.sample(fresh_count, seed=10_000 + args.seed)
-        start = time.perf_counter()
         exact = [problem.solve(theta).x for theta in fresh]
-        full_s = (time.perf_counter() - start) / len(fresh)
+        points = [jnp.asarray(theta) for theta in fresh]
         score_nodes = np.sort(rng.choice(graph.n, size=min(2000, graph.n), replace=False))
-        per_rank = {}
+        kinds[kind] = {"problem": problem, "fresh": fresh, "points": points, "edges": graph.num_edges}
+
+        def add(label, model, extra=""):
+            tau, l1 = accuracy(model, fresh, exact)
+            record = {"kind": kind, "label": label, "k": model.rank, "tau_top100_min": tau, "l1_top100_max": l1,
+                      "edges_touched": model.info["edges_touched"], "offline_s": model.info["offline_s"]}
+            entries.append((record, compiled_scorer(model, score_nodes)))
+            print(f"built {kind:9s} {label:13s} k={model.rank:3d}  tau>={tau:.5f}  L1<={l1:.1e}  edges touched "
+                  f"{model.info['edges_touched']:>8d}  offline {model.info['offline_s']:.1f} s{extra}", flush=True)
+            return record
+
         for k in ranks:
             settings = ReductionSettings(method=method, samples=samples, rank=k, rows=2 * k)
-            model = build_reduced_model(problem, settings, progress=False)
-            online, online_repeated = online_seconds(model, score_nodes, fresh)
-            tau, l1 = accuracy(model, fresh, exact)
-            per_rank[k] = {"online_s": online, "online_repeated_s": online_repeated, "speedup": full_s / online,
-                           "tau_top100_min": tau, "l1_top100_max": l1, "edges_touched": model.info["edges_touched"],
-                           "offline_s": model.info["offline_s"],
-                           "row_choice_and_assembly_s": model.info["timings"]["assemble_s"]}
-            lines.append(f"{kind:9s} {method:13s} k={k:3d} full {full_s * 1e3:8.1f} ms  online {online * 1e3:7.3f} ms"
-                         f" (repeated {online_repeated * 1e3:.3f})  x{full_s / online:8.0f}"
-                         f"  tau>={tau:.5f}  L1<={l1:.1e}"
-                         f"  edges touched {model.info['edges_touched']:>8d}  offline {model.info['offline_s']:.1f} s"
-                         f" (rows and assembly {model.info['timings']['assemble_s']:.1f} s)")
-            print(lines[-1], flush=True)
-        results[kind] = {"method": method, "full_solve_s": full_s, "by_rank": per_rank}
+            add(method, build_reduced_model(problem, settings, progress=False))
         if method == "interpolation":
             k = ranks[-1]
             curve = []
@@ -136,47 +135,68 @@ def main() -> None:
                 settings = ReductionSettings(method=method, samples=samples, rank=k, rows=2 * k, gamma=gamma)
                 model = build_reduced_model(problem, settings, progress=False)
                 tau, l1 = accuracy(model, fresh, exact)
-                online, _ = online_seconds(model, score_nodes, fresh)
+                online, _ = scorer_seconds(*compiled_scorer(model, score_nodes), points)
                 curve.append({"gamma": gamma, "edges_touched": model.info["edges_touched"], "tau_top100_min": tau,
                               "l1_top100_max": l1, "online_s": online})
                 print(f"  {kind} trade-off gamma={gamma:<5} edges touched {model.info['edges_touched']:>8d}"
                       f" ({model.info['edges_touched'] / graph.num_edges:6.1%})  tau>={tau:.5f}  L1<={l1:.1e}"
                       f"  online {online * 1e3:.3f} ms", flush=True)
-            results[kind]["tradeoff"] = curve
-            small = ranks[0]
-            settings = ReductionSettings(method=method, samples=regional_samples, rank=small, rows=2 * small,
+            kinds[kind]["tradeoff"] = curve
+            settings = ReductionSettings(method=method, samples=regional_samples, rank=ranks[0], rows=2 * ranks[0],
                                          regions=regions, gamma=16.0 if kind == "features" else None)
             model = build_model(problem, settings, progress=False)
-            online, online_repeated = online_seconds(model, score_nodes, fresh)
-            tau, l1 = accuracy(model, fresh, exact)
             used = len({model.region_of(theta) for theta in fresh})
-            results[kind]["regional"] = {"regions": regions, "samples": regional_samples, "k": small,
-                                         "online_s": online, "online_repeated_s": online_repeated,
-                                         "speedup": full_s / online, "speedup_repeated": full_s / online_repeated,
-                                         "tau_top100_min": tau,
-                                         "l1_top100_max": l1, "edges_touched": model.info["edges_touched"],
-                                         "offline_s": model.info["offline_s"], "regions_used": used}
-            lines.append(f"{kind:9s} {'regional':13s} k={small:3d} full {full_s * 1e3:8.1f} ms"
-                         f"  online {online * 1e3:7.3f} ms (repeated {online_repeated * 1e3:.3f}, "
-                         f"x{full_s / online_repeated:.0f})  x{full_s / online:8.0f}  tau>={tau:.5f}  L1<={l1:.1e}"
-                         f"  edges touched {model.info['edges_touched']:>8d}  offline {model.info['offline_s']:.1f} s"
-                         f" ({regions} regions, {regional_samples} samples; {used} used by the fresh points)")
-            print(lines[-1], flush=True)
+            record = add("regional", model, f" ({len(model.parts)} regions, {regional_samples} samples; "
+                                            f"{used} used by the fresh points)")
+            record.update(regions=len(model.parts), samples=regional_samples, regions_used=used)
+
+    # Every timing side by side: each round solves every fresh point in full and runs every reduced
+    # model, so a slow spell of this shared machine hits all of them alike; medians over rounds.
+    full_times = {kind: [] for kind in kinds}
+    online_times = [([], []) for _ in entries]
+    for _ in range(rounds):
+        for kind, data in kinds.items():
+            start = time.perf_counter()
+            for theta in data["fresh"]:
+                data["problem"].solve(theta)
+            full_times[kind].append((time.perf_counter() - start) / len(data["fresh"]))
+        for (record, (fn, arrays)), (going, repeated) in zip(entries, online_times):
+            one, two = scorer_seconds(fn, arrays, kinds[record["kind"]]["points"])
+            going.append(one)
+            repeated.append(two)
+    print(f"\nonline time per evaluation (scores of 2,000 nodes), medians of {rounds} rounds run side by side;"
+          f" speed-up = full solve / online, going round the {fresh_count} fresh points (repeated: 10 calls at each)")
+    for (record, _), (going, repeated) in zip(entries, online_times):
+        full_s = float(np.median(full_times[record["kind"]]))
+        record.update(full_solve_s=full_s, online_s=float(np.median(going)),
+                      online_repeated_s=float(np.median(repeated)))
+        record.update(speedup=full_s / record["online_s"], speedup_repeated=full_s / record["online_repeated_s"])
+        print(f"{record['kind']:9s} {record['label']:13s} k={record['k']:3d}  full {full_s * 1e3:7.1f} ms"
+              f"  online {record['online_s'] * 1e3:6.3f} ms  x{record['speedup']:6.0f}"
+              f"  (repeated {record['online_repeated_s'] * 1e3:6.3f} ms  x{record['speedup_repeated']:6.0f})"
+              f"  tau>={record['tau_top100_min']:.5f}  L1<={record['l1_top100_max']:.1e}"
+              f"  edges {record['edges_touched']}", flush=True)
+
+    def find(kind, label, k=None):
+        return next(r for r, _ in entries if r["kind"] == kind and r["label"] == label and (k is None or r["k"] == k))
 
     k = ranks[-1]
     summary = {
-        "edges": edges_count,
-        "full_solve_s": results["scale"]["full_solve_s"],
-        "galerkin_s": results["mixture"]["by_rank"][k]["online_s"],
-        "interp_s": {kind: results[kind]["by_rank"][k]["online_s"] for kind in ("scale", "features")},
-        "tau_top100_min": {kind: results[kind]["by_rank"][k]["tau_top100_min"] for kind in results},
-        "l1_top100_max": {kind: results[kind]["by_rank"][k]["l1_top100_max"] for kind in results},
+        "edges": kinds["scale"]["edges"],
+        "full_solve_s": {kind: float(np.median(times)) for kind, times in full_times.items()},
+        "galerkin_s": find("mixture", "galerkin", k)["online_s"],
+        "interp_s": {kind: find(kind, "interpolation", k)["online_s"] for kind in ("scale", "features")},
+        "tau_top100_min": {kind: find(kind, "galerkin" if kind == "mixture" else "interpolation", k)["tau_top100_min"]
+                           for kind in kinds},
+        "l1_top100_max": {kind: find(kind, "galerkin" if kind == "mixture" else "interpolation", k)["l1_top100_max"]
+                          for kind in kinds},
         "k": k,
-        "regional": {kind: {name: results[kind]["regional"][name]
+        "regional": {kind: {name: find(kind, "regional")[name]
                             for name in ("regions", "k", "online_s", "speedup", "online_repeated_s",
                                          "speedup_repeated", "tau_top100_min", "l1_top100_max")}
                      for kind in ("scale", "features")},
-        "details": results,
+        "models": [record for record, _ in entries],
+        "tradeoff": {kind: kinds[kind]["tradeoff"] for kind in ("scale", "features")},
     }
     print(json.dumps(summary))
 

@@ -65,7 +65,8 @@ class ReductionSettings:
         samples are grouped into R regions of the parameter domain and each
         region gets its own basis, rows and online solve
         (:mod:`fitrank.regions`); ``rank``, ``energy`` and ``rows`` then apply
-        per region.
+        per region, and each region's snapshots (n x its share of m) are read
+        into memory in turn, from ``snapshot_path`` when set.
     """
 
     method: str = "auto"
