@@ -322,14 +322,14 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         return {
             **{name: values[..., out_ids] for name, values in shifted.items()},
             "slot": out_slot,
-            "slots": np.zeros(sources.size),
+            "has_out": np.ones(sources.size, dtype=bool),
             "target": target,
             "target_slot": out_slot[target],
         }
 
     f = standard.shape[1]
     bound = 0.7 / np.sqrt(f) if bound is None else float(bound)
-    full = {**shifted, "slot": graph.src, "slots": np.zeros(graph.n)}
+    full = {**shifted, "slot": graph.src, "has_out": graph.out_degree() > 0}
     return Weighting(
         kind="features",
         param_names=tuple(f"feat:{name}" for name in graph.feature_names),
@@ -441,8 +441,8 @@ def _per_source_shifted(log_base: np.ndarray, standard: np.ndarray, src: np.ndar
     features = np.ascontiguousarray(standard.T)
     return {
         "log_base": log_base - extreme(log_base, np.maximum, -np.inf),
-        "feat_hi": np.stack([row - extreme(row, np.maximum, -np.inf) for row in features]).reshape(features.shape),
-        "feat_lo": np.stack([row - extreme(row, np.minimum, np.inf) for row in features]).reshape(features.shape),
+        "feat_hi": np.stack([row - extreme(row, np.maximum, -np.inf) for row in features]),
+        "feat_lo": np.stack([row - extreme(row, np.minimum, np.inf) for row in features]),
     }
 
 
@@ -455,9 +455,10 @@ def _feature_transition(theta, tables, xp=jnp):
     for f in range(tables["feat_hi"].shape[0]):  # a few fused row updates; XLA's (f,) @ (f, E) dot was slower
         score = score + theta[f] * xp.where(theta[f] > 0, tables["feat_hi"][f], tables["feat_lo"][f])
     weight = xp.exp(score)
-    slot, num = tables["slot"], tables["slots"].shape[0]
+    slot, num = tables["slot"], tables["has_out"].shape[0]
     total = _segment_sum(weight, slot, num, xp)
-    fits = xp.min(total) >= _SMALLEST_TOTAL if num else True
+    # a node without out-edges has total 0 and needs no normalising
+    fits = xp.min(xp.where(tables["has_out"], total, xp.inf)) >= _SMALLEST_TOTAL if num else True
     if xp is jnp:
         return jax.lax.cond(fits, _normalised_weights, _feature_transition_rescaled, weight, total, score, tables)
     return (_normalised_weights if fits else _feature_transition_rescaled)(weight, total, score, tables, xp)
@@ -474,7 +475,7 @@ def _normalised_weights(weight, total, score, tables, xp=jnp):
 
 def _feature_transition_rescaled(weight, total, score, tables, xp=jnp):
     """p with each source's scores shifted by their maximum: for theta so far out that the bound underflows."""
-    slot, num = tables["slot"], tables["slots"].shape[0]
+    slot, num = tables["slot"], tables["has_out"].shape[0]
     score = score - _constant(_segment_max(score, slot, num, xp), xp)[slot]
     weight = xp.exp(score)
     return _normalised_weights(weight, _segment_sum(weight, slot, num, xp), score, tables, xp)

@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 from scipy import stats
 
 from fitrank.graph import Graph, build_graph
+from fitrank import weightings
 from fitrank.weightings import KINDS, affine_terms, make_weighting, row_cost
 
 
@@ -417,3 +418,18 @@ def test_feature_transition_is_each_sources_softmax_however_far_theta_goes(magni
     edge_ids = np.arange(1, graph.num_edges, 3)
     np.testing.assert_allclose(np.asarray(weighting.transition(theta, weighting.local_tables(edge_ids))),
                                expected[edge_ids], rtol=rtol, atol=1e-300)
+
+
+def test_feature_transition_keeps_the_fast_path_beside_dangling_nodes(monkeypatch):
+    # Nodes without out-edges have a total of 0: that must not send every evaluation of the
+    # full tables to the exact per-source maximum, which is meant for theta far out of the box.
+    graph = random_typed_graph(3, n=40, num_features=2)
+    assert (graph.out_degree() == 0).any()
+    weighting = make_weighting("features", graph)
+    expected = weighting.transition(weighting.theta0 + 0.3, weighting.tables, xp=np)
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("the rescaled path ran inside the sampled box")
+
+    monkeypatch.setattr(weightings, "_feature_transition_rescaled", refuse)
+    np.testing.assert_array_equal(weighting.transition(weighting.theta0 + 0.3, weighting.tables, xp=np), expected)
