@@ -330,11 +330,17 @@ def enrich(model: ReducedModel, thetas: np.ndarray, *, executor: Executor | None
     The basis is updated from the old one and the new snapshots; interpolation
     rows are chosen again for the new basis.
     """
-    thetas = np.atleast_2d(np.asarray(thetas, dtype=np.float64))
     start = time.perf_counter()
-    new = solve_snapshots(model.problem, thetas, tol=model.settings.snapshot_tol, executor=executor,
-                          progress=progress)
+    thetas, new = solve_new_points(model, thetas, executor=executor, progress=progress)
     return extend_model(model, thetas, new, seconds=time.perf_counter() - start)
+
+
+def solve_new_points(model, thetas: np.ndarray, *, executor: Executor | None = None,
+                     progress: bool = False) -> tuple[np.ndarray, np.ndarray]:
+    """(thetas (m_new, p), snapshots (n, m_new)): full solves, at the model's snapshot tolerance, of points to add."""
+    thetas = np.atleast_2d(np.asarray(thetas, dtype=np.float64))
+    return thetas, solve_snapshots(model.problem, thetas, tol=model.settings.snapshot_tol, executor=executor,
+                                   progress=progress)
 
 
 def extend_model(model: ReducedModel, thetas: np.ndarray, snapshots: np.ndarray, *,

@@ -47,8 +47,8 @@ from fitrank.basis import pod_basis
 from fitrank.errors import FitrankInputError
 from fitrank.pagerank import PageRankProblem, certified_bound
 from fitrank.reduced import (ReducedModel, ReductionSettings, Scorer, _assemble, build_reduced_model, enrich,
-                             extend_model, model_from_stored, model_meta, read_model_file, sample_and_solve)
-from fitrank.snapshots import solve_snapshots
+                             extend_model, model_from_stored, model_meta, read_model_file, sample_and_solve,
+                             solve_new_points)
 
 OVERLAP = 2.0
 """A point joins every region whose squared centre distance is within this factor of its nearest one.
@@ -103,8 +103,8 @@ class RegionalModel:
     def scorer(self, nodes) -> Scorer:
         """A :class:`~fitrank.reduced.Scorer` of x at ``nodes`` (S,): the region's solve, chosen inside jit."""
         nodes = np.asarray(nodes, dtype=np.int64)
-        solve_arrays, solve_layout = pack([part.arrays for part in self.parts])
-        if self._jitted.get("layout") != solve_layout:
+        if "values" not in self._jitted:
+            solve_arrays, solve_layout = pack([part.arrays for part in self.parts])
             solve = self.parts[0].coefficient_fn  # every region's solve is the same function of its arrays
             coordinates = functools.partial(self.problem.weighting.coordinates, xp=jnp)
 
@@ -117,9 +117,10 @@ class RegionalModel:
                 region = nearest_centre(coordinates(theta), arrays["centres"], xp=jnp)
                 return jax.lax.switch(region, branches, theta, arrays)
 
-            self._jitted.update(values=values, layout=solve_layout)
+            # packed once per model: every scorer of it shares the function and these device arrays
+            self._jitted.update(values=values, solve=jax.device_put(solve_arrays))
         readouts = tuple(np.ascontiguousarray(part.basis.vectors[nodes].T) for part in self.parts)
-        arrays = jax.device_put({"centres": self.centres, "readout": readouts, "solve": solve_arrays})
+        arrays = {**jax.device_put({"centres": self.centres, "readout": readouts}), "solve": self._jitted["solve"]}
         return Scorer(self._jitted["values"], arrays, nodes)
 
     def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
@@ -237,10 +238,8 @@ def enrich_model(model: ReducedModel | RegionalModel, thetas: np.ndarray, *, exe
     """The model with full solves at ``thetas`` (m_new, p) added: to its one basis, or to each region they join."""
     if isinstance(model, ReducedModel):
         return enrich(model, thetas, executor=executor, progress=progress)
-    thetas = np.atleast_2d(np.asarray(thetas, dtype=np.float64))
     start = time.perf_counter()
-    new = solve_snapshots(model.problem, thetas, tol=model.settings.snapshot_tol, executor=executor,
-                          progress=progress)
+    thetas, new = solve_new_points(model, thetas, executor=executor, progress=progress)
     members = region_members(model.problem.weighting.coordinates(thetas), model.centres)
     parts = tuple(extend_model(part, thetas[belongs], new[:, belongs]) if belongs.any() else part
                   for part, belongs in zip(model.parts, members))
