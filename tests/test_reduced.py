@@ -14,6 +14,7 @@ from scipy.stats import kendalltau
 
 from fitrank.basis import extend_basis, pod_basis
 from fitrank.errors import FitrankInputError, ModelMismatchError
+from fitrank.galerkin import solve_once
 from fitrank.interpolation import RowChoice, _local_least_squares, constrained_least_squares, select_rows
 from fitrank.pagerank import PageRankProblem
 from fitrank.reduced import ReductionSettings, build_reduced_model, enrich, load_reduced_model
@@ -277,6 +278,31 @@ def test_constrained_least_squares_matches_the_dense_kkt_solve_and_finite_differ
 
     fd = (reference(plus) - reference(minus)) / (2 * h)
     assert abs(float(grad[i, j]) - fd) <= 1e-6 * max(1.0, abs(fd))
+
+
+def test_solve_once_matches_lapack_and_its_derivatives_match_finite_differences():
+    # Reference: scipy.linalg.solve (LAPACK gesv) on a matrix whose small diagonal forces row
+    # swaps, so the augmented-matrix factorisation must carry the pivots into the right-hand side.
+    rng = np.random.default_rng(11)
+    k = 25
+    matrix = rng.normal(size=(k, k)) + np.diag(np.full(k, 1e-3))
+    rhs = rng.normal(size=k)
+    expected = scipy.linalg.solve(matrix, rhs)
+    got = np.asarray(jax.jit(solve_once)(matrix, rhs))
+    np.testing.assert_allclose(got, expected, rtol=1e-9, atol=1e-12 * np.abs(expected).max())
+
+    # Reverse mode (the transpose of the custom JVP) against central differences of LAPACK's solve.
+    probe = rng.normal(size=k)
+    grad_matrix, grad_rhs = jax.grad(lambda m, b: probe @ solve_once(m, b), argnums=(0, 1))(matrix, rhs)
+    for (i, j) in ((3, 7), (0, 0), (k - 1, 2)):
+        h = 1e-6
+        plus, minus = matrix.copy(), matrix.copy()
+        plus[i, j] += h
+        minus[i, j] -= h
+        fd = probe @ (scipy.linalg.solve(plus, rhs) - scipy.linalg.solve(minus, rhs)) / (2 * h)
+        assert abs(float(grad_matrix[i, j]) - fd) <= 1e-6 * max(1.0, abs(fd))
+    # d/d rhs of probe . A^-1 rhs is A^-T probe exactly
+    np.testing.assert_allclose(np.asarray(grad_rhs), scipy.linalg.solve(matrix.T, probe), rtol=1e-9)
 
 
 def test_local_solve_derivatives_match_finite_differences_of_the_dense_system():
