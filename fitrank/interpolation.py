@@ -236,21 +236,21 @@ def _local_least_squares(p, leak_walk, arrays, alpha):
 def _local_least_squares_jvp(alpha, primals, tangents):
     """The KKT derivative with dB = -alpha (P_I(dp) U + d_leak) applied edge by edge.
 
-    dB^T rho and dB c need only U_S c and sums over the E edges, never the (E, k)
-    rows that autodiff through the sparse product would gather: the gradient then
-    costs O(E + (s + r) k) instead of O(E k) (s = distinct sources).
+    dB^T rho and dB c are sums over the E edges of one row of U_S each, gathered
+    once, never the (E, k) products of every tangent direction that autodiff
+    through the sparse product would form: O(E k) per derivative. They read U_S
+    only at the edges' sources, so a regional model's concatenated U_S costs no
+    more than one region's.
     """
     p, leak_walk, arrays = primals
     d_p, d_leak, _ = tangents
     matrix, rhs = _local_system(p, leak_walk, arrays, alpha)
     c, parts = _constrained_least_squares_parts(matrix, rhs, arrays["sums"])
     residual = rhs - matrix @ c
-    sources = arrays["basis_sources"]
-    row, slot = arrays["row"], arrays["slot"]
-    # (P_I(dp)^T rho) as an (s,) vector, then through U_S
-    pulled = jax.ops.segment_sum(d_p * residual[row], slot, num_segments=sources.shape[0])
-    d_matrix_t_residual = -alpha * (pulled @ sources + d_leak.T @ residual)
-    d_matrix_c = -alpha * (jax.ops.segment_sum(d_p * (sources @ c)[slot], row, num_segments=matrix.shape[0],
+    row = arrays["row"]
+    edge_sources = arrays["basis_sources"][arrays["slot"]]  # (E, k): U at each edge's source
+    d_matrix_t_residual = -alpha * ((d_p * residual[row]) @ edge_sources + d_leak.T @ residual)
+    d_matrix_c = -alpha * (jax.ops.segment_sum(d_p * (edge_sources @ c), row, num_segments=matrix.shape[0],
                                                indices_are_sorted=True) + d_leak @ c)
     return c, _kkt_tangent(d_matrix_t_residual - matrix.T @ d_matrix_c, 0.0, parts)
 
@@ -275,7 +275,8 @@ def constrained_least_squares(matrix, rhs, sums):
     where differentiating through B^T B would cost two more r k^2 products.
 
     Args:
-      matrix: (r, k) B, r >= k, full column rank.
+      matrix: (r, k) B, r >= k, full column rank apart from columns that are
+        exactly zero (padding), whose coefficients come out 0.
       rhs: (r,) f.
       sums: (k,) u.
 
@@ -296,9 +297,13 @@ def _constrained_least_squares_parts(matrix, rhs, sums):
     # scaling and the transpose sent XLA to a slower dot (320-400 us against 220-280 us at k = 100)
     transposed, matrix = jax.lax.optimization_barrier((matrix.T, matrix))
     gram = transposed @ matrix
-    scale = 1.0 / jnp.sqrt(jnp.diagonal(gram))  # the column norms, read off B^T B
+    # the column norms, read off B^T B; a column of zeros (a regional model pads smaller bases
+    # with them) gets scale 0 and a unit diagonal, hence coefficient 0
+    norms2 = jnp.diagonal(gram)
+    padding = norms2 == 0.0
+    scale = jnp.where(padding, 0.0, 1.0 / jnp.sqrt(jnp.where(padding, 1.0, norms2)))
     u = sums * scale
-    normal = gram * scale[:, None] * scale[None, :]
+    normal = gram * scale[:, None] * scale[None, :] + jnp.diag(padding.astype(gram.dtype))
     factor = jax.scipy.linalg.cho_factor(normal)
     both = jax.scipy.linalg.cho_solve(factor, jnp.stack([(transposed @ rhs) * scale, u], axis=1))
     y, z = both[:, 0], both[:, 1]

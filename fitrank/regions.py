@@ -101,27 +101,35 @@ class RegionalModel:
         return self.parts[self.region_of(theta)].vector(theta)
 
     def scorer(self, nodes) -> Scorer:
-        """A :class:`~fitrank.reduced.Scorer` of x at ``nodes`` (S,): the region's solve, chosen inside jit."""
+        """A :class:`~fitrank.reduced.Scorer` of x at ``nodes`` (S,): the region's solve, chosen inside jit.
+
+        The regions' solve arrays are padded to one shape and stacked
+        (:func:`stack_regions`), so the solve indexes them by region instead
+        of branching: XLA's conditional over R regions' solves cost 35-70 us a
+        call more than one region's program alone (measured at 200k nodes,
+        k = 50). The readouts (k, S) stay one array per region, chosen by a
+        ``lax.switch`` whose branches are one product each (within 5 us of a
+        plain product): indexing a stacked readout copies the region's slice
+        first, 60-140 us at S = 2,000.
+        """
         nodes = np.asarray(nodes, dtype=np.int64)
         if "values" not in self._jitted:
-            solve_arrays, solve_layout = pack([part.arrays for part in self.parts])
+            stacked = stack_regions(self.parts, self.problem.weighting.table_fill)
             solve = self.parts[0].coefficient_fn  # every region's solve is the same function of its arrays
             coordinates = functools.partial(self.problem.weighting.coordinates, xp=jnp)
-
-            def region_values(region, theta, arrays):
-                return solve(theta, unpack(arrays["solve"], solve_layout, region)) @ arrays["readout"][region]
-
-            branches = [functools.partial(region_values, region) for region in range(len(self.parts))]
+            readouts = [functools.partial(_read_out, region, rank=part.rank) for region, part in enumerate(self.parts)]
 
             def values(theta, arrays):
                 region = nearest_centre(coordinates(theta), arrays["centres"], xp=jnp)
-                return jax.lax.switch(region, branches, theta, arrays)
+                local = jax.tree_util.tree_map(lambda leaf: leaf[region], arrays["stacked"])
+                if "basis_sources" in arrays:
+                    local["basis_sources"] = arrays["basis_sources"]
+                return jax.lax.switch(region, readouts, solve(theta, local), arrays["readout"])
 
-            # packed once per model: every scorer of it shares the function and these device arrays
-            self._jitted.update(values=values, solve=jax.device_put(solve_arrays))
-        readouts = tuple(np.ascontiguousarray(part.basis.vectors[nodes].T) for part in self.parts)
-        arrays = {**jax.device_put({"centres": self.centres, "readout": readouts}), "solve": self._jitted["solve"]}
-        return Scorer(self._jitted["values"], arrays, nodes)
+            # stacked once per model: every scorer of it shares the function and these device arrays
+            self._jitted.update(values=values, arrays=jax.device_put({**stacked, "centres": self.centres}))
+        readout = tuple(np.ascontiguousarray(part.basis.vectors[nodes].T) for part in self.parts)
+        return Scorer(self._jitted["values"], {**self._jitted["arrays"], "readout": jax.device_put(readout)}, nodes)
 
     def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
         """Certified ||x(theta) - x_reduced(theta)||_1 (one full sparse mat-vec)."""
@@ -141,47 +149,84 @@ class RegionalModel:
         return path
 
 
-PACK_LIMIT = 16384
+def stack_regions(parts, table_fill: dict) -> dict:
+    """The regions' online arrays padded to common shapes and stacked along a new first axis.
 
+    Padding is inert: zero basis columns get coefficient 0
+    (:func:`~fitrank.interpolation.constrained_least_squares`; for Galerkin, a
+    unit diagonal in every affine term and a zero right-hand side), zero rows
+    drop out of the least squares, empty CSR rows hold no edge, and padded
+    table entries take ``table_fill`` (the weighting's inert values). For
+    interpolation every region gets one more row than the largest region has,
+    always empty: padded edges point there, so no derivative reaches a real row.
+    The interpolation's U_S is not stacked but concatenated, with each
+    region's CSR columns offset into it: the sparse product reads only the rows
+    it needs, where a stacked (R, s, k) array would copy a region's slice on
+    every call.
 
-def pack(trees: list) -> tuple[list[np.ndarray], tuple]:
-    """Pytrees of one structure as one flat array per leaf position, and the layout to cut them apart.
-
-    A jitted call pays for every array argument, and a ``lax.switch`` for every
-    operand of its branches: R regions of 14 arrays each cost about 17 us per
-    region per call (measured at 200k nodes), more than a region's whole solve
-    at small k. Packed, the count stays that of one region.
+    Args:
+      parts: (R,) :class:`~fitrank.reduced.ReducedModel` of one problem and method.
+      table_fill: the weighting's ``table_fill``.
 
     Returns:
-      (packed, layout): ``packed[j]`` holds leaf j of every tree, raveled and
-      concatenated; ``layout`` = (treedef, ((offset, shape) per leaf) per tree).
+      ``{"stacked": each leaf (R, ...)}``, and with interpolation on a
+      non-affine weighting ``"basis_sources"``: the (sum of s, largest k)
+      concatenation.
     """
-    flat = [jax.tree_util.tree_flatten(tree) for tree in trees]
-    treedef = flat[0][1]
-    if any(other != treedef for _, other in flat):
-        raise ValueError("regional arrays must share one structure")
-    packed, places = [], [[] for _ in trees]
-    for position in range(treedef.num_leaves):
-        leaves = [np.asarray(leaves[position]) for leaves, _ in flat]
-        if max(leaf.size for leaf in leaves) > PACK_LIMIT:
-            packed.append(tuple(leaves))
-            for tree in range(len(trees)):
-                places[tree].append((None, None))
-            continue
-        offsets = np.cumsum([0] + [leaf.size for leaf in leaves])
-        packed.append(np.concatenate([leaf.ravel() for leaf in leaves]))
-        for tree, (leaf, offset) in enumerate(zip(leaves, offsets)):
-            places[tree].append((int(offset), leaf.shape))
-    return packed, (treedef, tuple(tuple(place) for place in places))
+    trees = [jax.device_get(part.arrays) for part in parts]
+    width = max(part.rank for part in parts)
+    method = parts[0].method
+
+    def pad(leaf, shape, fill):
+        leaf = np.asarray(leaf)
+        return np.pad(leaf, [(0, size - now) for size, now in zip(shape, leaf.shape)], constant_values=fill)
+
+    def common(leaves):
+        return tuple(max(sizes) for sizes in zip(*(np.shape(leaf) for leaf in leaves)))
+
+    stacked = {}
+    if method == "galerkin":
+        terms = []
+        for tree in trees:
+            k = tree["sums"].shape[0]
+            padded = pad(tree["terms"], (tree["terms"].shape[0], width, width), 0.0)
+            padded[:, np.arange(k, width), np.arange(k, width)] = 1.0  # coefficients sum to 1 (the mixture)
+            terms.append(padded)
+        stacked.update(terms=np.stack(terms), rhs=np.stack([pad(t["rhs"], (width,), 0.0) for t in trees]),
+                       sums=np.stack([pad(t["sums"], (width,), 0.0) for t in trees]))
+        return {"stacked": stacked}
+    rows = max(tree["basis_rows"].shape[0] for tree in trees) + ("tables" in trees[0])
+    shapes = {"basis_rows": (rows, width), "teleport_rows": (rows,), "sums": (width,)}
+    if "terms" in trees[0]:
+        shapes["terms"] = (trees[0]["terms"].shape[0], rows, width)
+    else:
+        edges = max(tree["slot"].shape[0] for tree in trees)
+        shapes.update(leak_rows=(rows, trees[0]["leak_rows"].shape[1]), leak_proj=(trees[0]["leak_proj"].shape[0], width))
+        offsets = np.cumsum([0] + [tree["basis_sources"].shape[0] for tree in trees])
+        stacked.update(
+            indptr=np.stack([pad(t["indptr"], (rows + 1,), t["indptr"][-1]) for t in trees]),
+            row=np.stack([pad(t["row"], (edges,), rows - 1) for t in trees]),
+            slot=np.stack([pad(t["slot"] + offset, (edges,), offset) for t, offset in zip(trees, offsets)]),
+            tables={name: np.stack([pad(t["tables"][name], common([u["tables"][name] for u in trees]),
+                                        _fill(table_fill, name)) for t in trees])
+                    for name in trees[0]["tables"]})
+    stacked.update({name: np.stack([pad(t[name], shape, 0.0) for t in trees]) for name, shape in shapes.items()})
+    arrays = {"stacked": stacked}
+    if "tables" in trees[0]:
+        arrays["basis_sources"] = np.concatenate([pad(t["basis_sources"], (t["basis_sources"].shape[0], width), 0.0)
+                                                  for t in trees])
+    return arrays
 
 
-def unpack(packed, layout: tuple, index: int):
-    """Tree ``index`` of :func:`pack`'s output, cut out with static slices."""
-    treedef, places = layout
-    leaves = [buffer[index] if offset is None else
-              jax.lax.slice(buffer, (offset,), (offset + int(np.prod(shape)),)).reshape(shape)
-              for buffer, (offset, shape) in zip(packed, places[index])]
-    return jax.tree_util.tree_unflatten(treedef, leaves)
+def _read_out(region: int, coefficients, readouts, *, rank: int):
+    """x at the scorer's nodes from the padded coefficients of one region (its first ``rank`` are real)."""
+    return coefficients[:rank] @ readouts[region]
+
+
+def _fill(table_fill: dict, name: str):
+    if name not in table_fill:
+        raise ValueError(f"the weighting names no padding value for its table '{name}' (Weighting.table_fill)")
+    return table_fill[name]
 
 
 def nearest_centre(point, centres, xp=np):

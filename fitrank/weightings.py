@@ -73,6 +73,10 @@ class Weighting:
         features (feature weighting; empty otherwise).
       options: the keyword options it was built with; ``make_weighting(kind,
         graph, **options)`` rebuilds it (how worker processes get it).
+      table_fill: ``{table name: value}`` that makes a padded entry of
+        ``local_tables`` inert: a padded edge gets a finite p and leaves every
+        real edge's p unchanged. Regional models pad their regions' tables to
+        one shape with it (:mod:`fitrank.regions`).
     """
 
     kind: str
@@ -91,6 +95,7 @@ class Weighting:
     feature_center: np.ndarray = field(default_factory=lambda: np.zeros(0))
     feature_scale: np.ndarray = field(default_factory=lambda: np.zeros(0))
     options: dict = field(default_factory=dict)
+    table_fill: dict = field(default_factory=dict)
 
     @property
     def num_params(self) -> int:
@@ -203,6 +208,7 @@ def relation_mixture(graph: Graph) -> Weighting:
         leak_coefficients=_softmax,
         coefficients=jax.nn.softmax,
         local_tables=local_tables,
+        table_fill={"rel": 0, "unit": 0.0},
     )
 
 
@@ -275,6 +281,8 @@ def relation_scale(graph: Graph, bound: float = 1.5) -> Weighting:
         leak_coefficients=_one_coefficient,
         coefficients=None,
         local_tables=local_tables,
+        # a padded edge has base weight 0 (so p = 0); a padded source's out-weights are 1, never 0 / 0
+        table_fill={"rel": 0, "base": 0.0, "slot": 0, "out_weight": 1.0},
     )
 
 
@@ -346,6 +354,10 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         local_tables=local_tables,
         feature_center=center,
         feature_scale=spread,
+        # a padded out-edge has weight exp(-inf) = 0 and normalises nothing; a padded source has no
+        # out-edge; a padded in-edge reads the first real out-edge (finite, and never used)
+        table_fill={"log_base": -np.inf, "feat_hi": 0.0, "feat_lo": 0.0, "slot": 0, "has_out": False,
+                    "target": 0, "target_slot": 0},
     )
 
 

@@ -20,7 +20,9 @@ from fitrank.weightings import make_weighting
 from tests._datasets import generated
 
 # the feature weighting needs about 90 directions on these graphs, so each region needs ~100 samples
-CASES = [("mixture", "galerkin", 128, 4), ("scale", "interpolation", 128, 4), ("features", "interpolation", 256, 3)]
+# The regions' k differ (energy rule) in the first three: the stacked scorer's padding is exercised
+CASES = [("mixture", "galerkin", 128, 4), ("mixture", "interpolation", 128, 4), ("scale", "interpolation", 128, 4),
+         ("features", "interpolation", 256, 3)]
 
 
 @functools.lru_cache(maxsize=None)
@@ -70,7 +72,9 @@ def test_regional_scorer_picks_the_region_inside_jit_and_its_gradient_matches_fi
     scorer = model.scorer(nodes)
     values = jax.jit(scorer.fn)
     thetas, _ = _fresh(kind)
-    for theta in thetas:
+    # and one sampled point that each region answers: its padded, stacked arrays must give its own values
+    own = [next(t for t in part.thetas if model.region_of(t) == region) for region, part in enumerate(model.parts)]
+    for theta in np.vstack([thetas, own]):
         np.testing.assert_allclose(np.asarray(values(jnp.asarray(theta), scorer.arrays)), model.vector(theta)[nodes],
                                    rtol=1e-10, atol=1e-15)
     weights = np.random.default_rng(5).normal(size=nodes.size)
