@@ -236,21 +236,29 @@ def _local_least_squares(p, leak_walk, arrays, alpha):
 def _local_least_squares_jvp(alpha, primals, tangents):
     """The KKT derivative with dB = -alpha (P_I(dp) U + d_leak) applied edge by edge.
 
-    dB^T rho and dB c are sums over the E edges of one row of U_S each, gathered
-    once, never the (E, k) products of every tangent direction that autodiff
-    through the sparse product would form: O(E k) per derivative. They read U_S
-    only at the edges' sources, so a regional model's concatenated U_S costs no
-    more than one region's.
+    dB^T rho and dB c need only U_S c and sums over the E edges, never the (E, k)
+    products of every tangent direction that autodiff through the sparse
+    product would form: O(E + (s + r) k) per derivative (s = distinct sources).
+    A regional model's U_S concatenates all regions' (s much larger than E):
+    there the edges' rows of U_S are gathered once instead, O(E k).
     """
     p, leak_walk, arrays = primals
     d_p, d_leak, _ = tangents
     matrix, rhs = _local_system(p, leak_walk, arrays, alpha)
     c, parts = _constrained_least_squares_parts(matrix, rhs, arrays["sums"])
     residual = rhs - matrix @ c
-    row = arrays["row"]
-    edge_sources = arrays["basis_sources"][arrays["slot"]]  # (E, k): U at each edge's source
-    d_matrix_t_residual = -alpha * ((d_p * residual[row]) @ edge_sources + d_leak.T @ residual)
-    d_matrix_c = -alpha * (jax.ops.segment_sum(d_p * (edge_sources @ c), row, num_segments=matrix.shape[0],
+    sources, row, slot = arrays["basis_sources"], arrays["row"], arrays["slot"]
+    if sources.shape[0] <= slot.shape[0]:
+        # products over U_S, then per edge: one model's U_S has at most one row per edge
+        source_c = (sources @ c)[slot]
+        pulled_t_residual = jax.ops.segment_sum(d_p * residual[row], slot, num_segments=sources.shape[0]) @ sources
+    else:
+        # a regional model's U_S concatenates every region's: gather the edges' rows once instead
+        edge_sources = sources[slot]
+        source_c = edge_sources @ c
+        pulled_t_residual = (d_p * residual[row]) @ edge_sources
+    d_matrix_t_residual = -alpha * (pulled_t_residual + d_leak.T @ residual)
+    d_matrix_c = -alpha * (jax.ops.segment_sum(d_p * source_c, row, num_segments=matrix.shape[0],
                                                indices_are_sorted=True) + d_leak @ c)
     return c, _kkt_tangent(d_matrix_t_residual - matrix.T @ d_matrix_c, 0.0, parts)
 
