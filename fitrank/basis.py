@@ -79,45 +79,64 @@ def _lost(singular_values: np.ndarray, k: int) -> float:
 
 
 def pod_basis(snapshots: np.ndarray, rank: int | None = None, energy: float | None = None,
-              max_rank: int | None = None, method: str = "auto", block_rows: int = 65_536) -> PodBasis:
-    """POD basis of the columns of ``snapshots``.
+              max_rank: int | None = None, method: str = "auto", block_rows: int = 65_536,
+              columns: np.ndarray | None = None, gram: np.ndarray | None = None) -> PodBasis:
+    """POD basis of the columns of ``snapshots`` (or of the chosen ``columns``).
 
     Args:
       snapshots: (n, m) array or ``np.memmap``.
       rank, energy, max_rank: see :func:`choose_rank`.
       method: ``"svd"`` (thin SVD in memory), ``"gram"`` (method of snapshots,
-        streamed in row blocks) or ``"auto"`` (SVD when X is under ~2 GB).
+        streamed in row blocks) or ``"auto"`` (SVD when X is under ~2 GB and
+        not memory-mapped).
       block_rows: rows per block on the Gram path.
+      columns: (m_c,) indices of the snapshots to use (default: all). On the
+        Gram path only row blocks of X are read, so a subset costs no copy of X.
+      gram: (m, m) :func:`snapshot_gram` of all of ``snapshots``, when already
+        formed (the Gram path then reads X once, for U, instead of twice):
+        several bases over subsets of the columns share one pass for it.
 
     Returns:
       :class:`PodBasis`.
     """
     n, m = snapshots.shape
+    columns = np.arange(m) if columns is None else np.asarray(columns, dtype=np.int64)
     if method == "auto":
-        method = "svd" if n * m * 8 < 2e9 and not isinstance(snapshots, np.memmap) else "gram"
+        method = "svd" if n * columns.size * 8 < 2e9 and not isinstance(snapshots, np.memmap) else "gram"
     if method == "svd":
-        u, s, _ = np.linalg.svd(np.asarray(snapshots), full_matrices=False)
+        chosen = np.asarray(snapshots) if columns.size == m else np.asarray(snapshots)[:, columns]
+        u, s, _ = np.linalg.svd(chosen, full_matrices=False)
         k = choose_rank(s, rank, energy, max_rank)
         return PodBasis(np.ascontiguousarray(u[:, :k]), s, _lost(s, k))
     if method != "gram":
         raise ValueError(f"POD method must be 'svd', 'gram' or 'auto', got '{method}'")
-    gram = np.zeros((m, m))
-    for start in range(0, n, block_rows):
-        block = np.asarray(snapshots[start:start + block_rows])
-        gram += block.T @ block
-    eigval, eigvec = np.linalg.eigh(gram)
+    gram = snapshot_gram(snapshots, block_rows) if gram is None else np.asarray(gram)
+    eigval, eigvec = np.linalg.eigh(gram[np.ix_(columns, columns)])
     eigval, eigvec = eigval[::-1], eigvec[:, ::-1]
     resolvable = eigval > eigval[0] * 1e-14  # the Gram path squares the condition number
     s = np.where(resolvable, np.sqrt(np.clip(eigval, 0.0, None)), 0.0)
     k = choose_rank(s, rank, energy, max_rank)
     coef = eigvec[:, :k] / s[:k]
     vectors = np.empty((n, k))
-    for start in range(0, n, block_rows):
-        vectors[start:start + block_rows] = np.asarray(snapshots[start:start + block_rows]) @ coef
+    for start, block in _row_blocks(snapshots, block_rows):
+        vectors[start:start + block.shape[0]] = block[:, columns] @ coef
     # one re-orthonormalisation pass removes the loss of orthogonality of U = X V S^-1
     vectors, r = np.linalg.qr(vectors)
     vectors *= np.sign(np.diag(r))
     return PodBasis(vectors, s, _lost(s, k))
+
+
+def snapshot_gram(snapshots: np.ndarray, block_rows: int = 65_536) -> np.ndarray:
+    """(m, m) X^T X of the snapshots (n, m), from row blocks (one pass over a memory-mapped file)."""
+    gram = np.zeros((snapshots.shape[1],) * 2)
+    for _, block in _row_blocks(snapshots, block_rows):
+        gram += block.T @ block
+    return gram
+
+
+def _row_blocks(snapshots: np.ndarray, block_rows: int):
+    for start in range(0, snapshots.shape[0], block_rows):
+        yield start, np.asarray(snapshots[start:start + block_rows])
 
 
 def extend_basis(basis: PodBasis, new_vectors: np.ndarray, rank: int | None = None, energy: float | None = None,

@@ -65,8 +65,8 @@ class ReductionSettings:
         samples are grouped into R regions of the parameter domain and each
         region gets its own basis, rows and online solve
         (:mod:`fitrank.regions`); ``rank``, ``energy`` and ``rows`` then apply
-        per region, and each region's snapshots (n x its share of m) are read
-        into memory in turn, from ``snapshot_path`` when set.
+        per region. From ``snapshot_path`` every region's basis is streamed
+        (the method of snapshots on its sub-Gram matrix), never read whole.
     """
 
     method: str = "auto"

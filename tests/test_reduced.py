@@ -12,7 +12,7 @@ import pytest
 import scipy.linalg
 from scipy.stats import kendalltau
 
-from fitrank.basis import extend_basis, pod_basis
+from fitrank.basis import extend_basis, pod_basis, snapshot_gram
 from fitrank.errors import FitrankInputError, ModelMismatchError
 from fitrank.galerkin import solve_once
 from fitrank.interpolation import RowChoice, _local_least_squares, constrained_least_squares, select_rows
@@ -169,6 +169,13 @@ def test_method_of_snapshots_from_memmap_equals_svd(tmp_path):
     np.testing.assert_allclose(streamed.singular_values[:8], dense.singular_values[:8], rtol=1e-8)
     # same subspace: the projector difference is tiny
     diff = streamed.vectors @ streamed.vectors.T - dense.vectors @ dense.vectors.T
+    assert np.abs(diff).max() < 1e-7
+    # a subset of the columns, from a Gram matrix of all of them formed once (what regions share)
+    columns = np.array([0, 3, 4, 7, 8, 11, 15, 16, 19])
+    subset = pod_basis(stored, rank=5, method="gram", block_rows=300, columns=columns, gram=snapshot_gram(stored))
+    reference = pod_basis(np.asarray(stored)[:, columns], rank=5, method="svd")
+    np.testing.assert_allclose(subset.singular_values[:5], reference.singular_values[:5], rtol=1e-8)
+    diff = subset.vectors @ subset.vectors.T - reference.vectors @ reference.vectors.T
     assert np.abs(diff).max() < 1e-7
 
 

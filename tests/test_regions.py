@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+from dataclasses import replace
 
 import jax
 import jax.numpy as jnp
@@ -116,6 +117,20 @@ def test_save_load_round_trip_and_refusals(tmp_path):
     # one global model still loads through the same entry point
     single = build_model(model.problem, ReductionSettings(samples=32), progress=False)
     assert isinstance(load_model(single.save(tmp_path / "single.npz"), model.problem), ReducedModel)
+
+
+def test_regions_from_a_memory_mapped_snapshot_file_match_the_in_memory_build(tmp_path):
+    # the streamed path (one Gram matrix, sub-matrices per region) against thin SVDs of each
+    # region's snapshots in memory: the same subspaces
+    problem = _problem("scale")
+    settings = ReductionSettings(samples=48, regions=3, rank=8)
+    in_memory = build_model(problem, settings, progress=False)
+    streamed = build_model(problem, replace(settings, snapshot_path=str(tmp_path / "x.npy")), progress=False)
+    np.testing.assert_array_equal(streamed.centres, in_memory.centres)
+    for one, other in zip(streamed.parts, in_memory.parts):
+        np.testing.assert_array_equal(one.thetas, other.thetas)
+        diff = one.basis.vectors @ one.basis.vectors.T - other.basis.vectors @ other.basis.vectors.T
+        assert np.abs(diff).max() < 1e-7
 
 
 def test_enrichment_goes_to_the_regions_a_point_joins():
