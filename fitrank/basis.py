@@ -102,7 +102,7 @@ def pod_basis(snapshots: np.ndarray, rank: int | None = None, energy: float | No
     n, m = snapshots.shape
     columns = np.arange(m) if columns is None else np.asarray(columns, dtype=np.int64)
     if method == "auto":
-        method = "svd" if n * columns.size * 8 < 2e9 and not isinstance(snapshots, np.memmap) else "gram"
+        method = "gram" if streams(snapshots, columns.size) else "svd"
     if method == "svd":
         chosen = np.asarray(snapshots) if columns.size == m else np.asarray(snapshots)[:, columns]
         u, s, _ = np.linalg.svd(chosen, full_matrices=False)
@@ -124,6 +124,12 @@ def pod_basis(snapshots: np.ndarray, rank: int | None = None, energy: float | No
     vectors, r = np.linalg.qr(vectors)
     vectors *= np.sign(np.diag(r))
     return PodBasis(vectors, s, _lost(s, k))
+
+
+def streams(snapshots: np.ndarray, width: int) -> bool:
+    """Whether :func:`pod_basis` ("auto") takes the Gram path for ``width`` of these snapshots' columns:
+    for a memory-mapped file, or when those columns would take 2 GB or more in memory."""
+    return isinstance(snapshots, np.memmap) or snapshots.shape[0] * width * 8 >= 2e9
 
 
 def snapshot_gram(snapshots: np.ndarray, block_rows: int = 65_536) -> np.ndarray:

@@ -43,7 +43,7 @@ import numpy as np
 from scipy.cluster.vq import kmeans2
 
 from fitrank.atomic import staged_file
-from fitrank.basis import pod_basis, snapshot_gram
+from fitrank.basis import pod_basis, snapshot_gram, streams
 from fitrank.errors import FitrankInputError
 from fitrank.pagerank import PageRankProblem, certified_bound
 from fitrank.reduced import (ReducedModel, ReductionSettings, Scorer, _assemble, build_reduced_model, enrich,
@@ -267,9 +267,9 @@ def build_model(problem: PageRankProblem, settings: ReductionSettings = Reductio
     members = region_members(points, centres)
     timings["regions_s"] = time.perf_counter() - start
     parts = []
-    # a memory-mapped snapshot file is read in row blocks: one pass for the Gram matrix of all
-    # samples, whose sub-matrices serve every region, and one per region for its vectors
-    gram = snapshot_gram(snapshots) if isinstance(snapshots, np.memmap) else None
+    # streamed snapshots (a memory-mapped file, or too large to copy) are read in row blocks: one pass
+    # for the Gram matrix of all samples, whose sub-matrices serve every region, one per region for U
+    gram = snapshot_gram(snapshots) if any(streams(snapshots, int(belongs.sum())) for belongs in members) else None
     for belongs in members:
         start = time.perf_counter()
         basis = pod_basis(snapshots, rank=settings.rank, energy=settings.energy, max_rank=settings.max_rank,
