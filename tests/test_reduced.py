@@ -15,7 +15,9 @@ from scipy.stats import kendalltau
 from fitrank.basis import extend_basis, pod_basis, snapshot_gram
 from fitrank.errors import FitrankInputError, ModelMismatchError
 from fitrank.galerkin import solve_once
-from fitrank.interpolation import RowChoice, _local_least_squares, constrained_least_squares, select_rows
+from fitrank import interpolation
+from fitrank.interpolation import (RowChoice, _local_least_squares, constrained_least_squares, interpolation_arrays,
+                                   select_rows, source_layout)
 from fitrank.pagerank import PageRankProblem
 from fitrank.reduced import ReductionSettings, build_reduced_model, enrich, load_reduced_model
 from fitrank.snapshots import solve_snapshots
@@ -346,6 +348,33 @@ def test_local_solve_derivatives_match_finite_differences_of_the_dense_system():
     g_p, g_leak = jax.grad(lambda p, leak: probe @ solve(p, leak), argnums=(0, 1))(jnp.asarray(p), jnp.asarray(leak))
     directional = float(np.asarray(g_p) @ d_p + np.sum(np.asarray(g_leak) * d_leak))
     assert abs(directional - probe @ fd) <= 1e-6 * max(1.0, abs(probe @ fd))
+
+
+def test_both_layouts_of_the_sources_rows_give_the_same_solve(monkeypatch):
+    # U's rows at the in-edges' sources are stored in edge order (few repeated sources) or once
+    # per distinct source (many): the same sparse product either way, so the coefficients must
+    # agree to round-off (the check is exact agreement of two layouts, common practice).
+    few = np.array([4, 2, 9, 4, 5, 3, 8, 1])  # one repeat in eight: edge order
+    sources, slot = source_layout(few)
+    np.testing.assert_array_equal(sources[slot], few)
+    assert sources.size == few.size
+    many = np.array([4, 4, 4, 2, 4, 2, 4, 4])  # hubs' shared sources (4x): one row per source
+    sources, slot = source_layout(many)
+    np.testing.assert_array_equal(sources[slot], many)
+    np.testing.assert_array_equal(sources, [2, 4])
+
+    problem, model = _problem("scale"), _model("scale", "interpolation")
+    thetas, _ = _fresh("scale")
+    monkeypatch.setattr(interpolation, "EDGE_ORDER_LIMIT", np.inf)
+    edge_order, _ = interpolation_arrays(problem, model.basis.vectors, model.rows)
+    monkeypatch.setattr(interpolation, "EDGE_ORDER_LIMIT", 0.0)
+    distinct, _ = interpolation_arrays(problem, model.basis.vectors, model.rows)
+    assert edge_order["basis_sources"].shape[0] == edge_order["slot"].size > distinct["basis_sources"].shape[0]
+    solve = jax.jit(model.coefficient_fn)
+    for theta in thetas[:4]:
+        np.testing.assert_allclose(np.asarray(solve(jnp.asarray(theta), jax.device_put(edge_order))),
+                                   np.asarray(solve(jnp.asarray(theta), jax.device_put(distinct))),
+                                   rtol=1e-12, atol=1e-15)
 
 
 def test_scorer_differences_equal_differences_of_scores():
