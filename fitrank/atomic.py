@@ -85,3 +85,16 @@ def staged_file(target: str | Path, suffix: str = ""):
         os.replace(temp, target)
     finally:
         Path(temp).unlink(missing_ok=True)
+
+
+def link_or_copy(source: str | Path, target: str | Path) -> None:
+    """Make ``target`` a hard link to ``source``, or a copy where links are refused (another file system).
+
+    A hard link shares the bytes without writing them again; replacing
+    ``source`` later (as :func:`staged_file` does, by rename) leaves ``target``
+    with the old content, so a run folder keeps the model it used.
+    """
+    try:
+        os.link(source, target)
+    except OSError:
+        shutil.copyfile(source, target)

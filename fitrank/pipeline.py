@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fitrank.atomic import refuse_unwritable, staged_folder
+from fitrank.atomic import link_or_copy, refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
 from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.graph import SPLITS, Dataset
@@ -274,10 +274,11 @@ def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = N
     outcome = FitResult(theta, weighting.named(theta), record, x, history, problem, model,
                         run_dir if write else None, dataset)
     if write:
-        write_run(outcome, config, run_dir)
-        if config.reduction.model and model is not None and (not reused or len(rounds) > 1):
+        shared = model_path(config) if config.reduction.model and model is not None else None
+        if shared is not None and (not reused or len(rounds) > 1):
             # the shared model file is for later fits and sweeps: give them what this fit built or enriched
-            model.save(model_path(config))
+            model.save(shared)
+        write_run(outcome, config, run_dir, model_file=shared)
     return outcome
 
 
@@ -349,11 +350,14 @@ def _json_ready(value):
     return value
 
 
-def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
+def write_run(result: FitResult, config: Config, run_dir: Path, *, model_file: Path | None = None) -> Path:
     """Write the run folder: effective config, result.json, history.csv, scores, plots, model.
 
     Everything goes into a temporary sibling folder first and is renamed into
     place at the end, so a failed run leaves any earlier run folder intact.
+    ``model_file``, when given, already holds ``result.model`` (the shared
+    model file): the run folder gets a hard link to it rather than a second
+    write of the same bytes.
     """
     run_dir = Path(run_dir)
     with staged_folder(run_dir) as staging:
@@ -368,7 +372,9 @@ def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
         scores = pd.DataFrame({"node": ids if ids.dtype != object else ids.astype(str),
                                "score": result.x, "rank": rank}).sort_values("rank")
         scores.to_parquet(staging / "scores.parquet", index=False)
-        if result.model is not None:
+        if model_file is not None:
+            link_or_copy(model_file, staging / MODEL_FILE)
+        elif result.model is not None:
             result.model.save(staging / MODEL_FILE)
         if config.output.plots:
             _write_plots(result, staging)

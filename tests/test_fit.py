@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from fitrank.atomic import staged_file
 from fitrank.cli import main
 from fitrank.pipeline import fit, summary_lines
 from fitrank.metrics import pair_accuracy
@@ -130,6 +131,14 @@ def test_a_shared_model_file_is_created_by_the_first_fit_and_reused_by_the_next(
     second = fit(config, overrides=settings, out=tmp_path / "run2", progress=False, log=lambda m: None)
     assert second.record["model"]["reused"] is True
     assert second.model.rank == first.model.rank
+    # each run folder holds the model it used: the shared file's bytes, linked rather than written again
+    kept = shared.read_bytes()
+    for run in ("run1", "run2"):
+        assert (tmp_path / run / "model.npz").stat().st_ino == shared.stat().st_ino
+    # replacing the shared file (as an enriching fit does) leaves the runs' models as they were
+    with staged_file(shared) as temp:
+        temp.write_bytes(b"another model")
+    assert (tmp_path / "run1" / "model.npz").read_bytes() == kept
 
 
 @pytest.mark.parametrize("override,key", [
