@@ -88,13 +88,15 @@ def staged_file(target: str | Path, suffix: str = ""):
 
 
 def link_or_copy(source: str | Path, target: str | Path) -> None:
-    """Make ``target`` a hard link to ``source``, or a copy where links are refused (another file system).
+    """Replace ``target`` atomically by a hard link to ``source``, or by a copy where links are refused.
 
-    A hard link shares the bytes without writing them again; replacing
-    ``source`` later (as :func:`staged_file` does, by rename) leaves ``target``
-    with the old content, so a run folder keeps the model it used.
+    A hard link shares the bytes without writing them again (a copy is made
+    across file systems). Replacing either path later by rename, as
+    :func:`staged_file` does, leaves the other with the old content.
     """
-    try:
-        os.link(source, target)
-    except OSError:
-        shutil.copyfile(source, target)
+    with staged_file(target) as temp:
+        temp.unlink()
+        try:
+            os.link(source, temp)
+        except OSError:
+            shutil.copyfile(source, temp)

@@ -274,11 +274,11 @@ def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = N
     outcome = FitResult(theta, weighting.named(theta), record, x, history, problem, model,
                         run_dir if write else None, dataset)
     if write:
-        shared = model_path(config) if config.reduction.model and model is not None else None
-        if shared is not None and (not reused or len(rounds) > 1):
-            # the shared model file is for later fits and sweeps: give them what this fit built or enriched
-            model.save(shared)
-        write_run(outcome, config, run_dir, model_file=shared)
+        write_run(outcome, config, run_dir)
+        if config.reduction.model and model is not None and (not reused or len(rounds) > 1):
+            # the shared model file is for later fits and sweeps: give them what this fit built or
+            # enriched, as a link to the run folder's copy rather than a second write of its bytes
+            link_or_copy(run_dir / MODEL_FILE, model_path(config))
     return outcome
 
 
@@ -350,14 +350,11 @@ def _json_ready(value):
     return value
 
 
-def write_run(result: FitResult, config: Config, run_dir: Path, *, model_file: Path | None = None) -> Path:
+def write_run(result: FitResult, config: Config, run_dir: Path) -> Path:
     """Write the run folder: effective config, result.json, history.csv, scores, plots, model.
 
     Everything goes into a temporary sibling folder first and is renamed into
     place at the end, so a failed run leaves any earlier run folder intact.
-    ``model_file``, when given, already holds ``result.model`` (the shared
-    model file): the run folder gets a hard link to it rather than a second
-    write of the same bytes.
     """
     run_dir = Path(run_dir)
     with staged_folder(run_dir) as staging:
@@ -372,9 +369,7 @@ def write_run(result: FitResult, config: Config, run_dir: Path, *, model_file: P
         scores = pd.DataFrame({"node": ids if ids.dtype != object else ids.astype(str),
                                "score": result.x, "rank": rank}).sort_values("rank")
         scores.to_parquet(staging / "scores.parquet", index=False)
-        if model_file is not None:
-            link_or_copy(model_file, staging / MODEL_FILE)
-        elif result.model is not None:
+        if result.model is not None:
             result.model.save(staging / MODEL_FILE)
         if config.output.plots:
             _write_plots(result, staging)
