@@ -267,9 +267,10 @@ def _local_least_squares_jvp(alpha, primals, tangents):
 
     dB^T rho and dB c need only U_S c and sums over the E edges, never the (E, k)
     products of every tangent direction that autodiff through the sparse
-    product would form: O(E + (s + r) k) per derivative (s = distinct sources).
-    A regional model's U_S concatenates all regions' (s much larger than E):
-    there the edges' rows of U_S are gathered once instead, O(E k).
+    product would form: O(E + (s + r) k) per derivative (s = rows of U_S: the
+    distinct sources, or one per edge, see :func:`source_layout`). A regional
+    model's U_S concatenates all regions' (s much larger than E): there the
+    edges' rows of U_S are gathered once instead, O(E k).
     """
     p, leak_walk, arrays = primals
     d_p, d_leak, _ = tangents

@@ -195,9 +195,10 @@ def stack_regions(parts, table_fill: dict) -> dict:
         stacked.update(terms=np.stack(terms), rhs=np.stack([pad(t["rhs"], (width,), 0.0) for t in trees]),
                        sums=np.stack([pad(t["sums"], (width,), 0.0) for t in trees]))
         return {"stacked": stacked}
-    rows = max(tree["basis_rows"].shape[0] for tree in trees) + ("tables" in trees[0])
+    local_subgraph = "tables" in trees[0]  # interpolation on a non-affine weighting
+    rows = max(tree["basis_rows"].shape[0] for tree in trees) + local_subgraph
     shapes = {"basis_rows": (rows, width), "teleport_rows": (rows,), "sums": (width,)}
-    if "terms" in trees[0]:
+    if not local_subgraph:
         shapes["terms"] = (trees[0]["terms"].shape[0], rows, width)
     else:
         edges = max(tree["slot"].shape[0] for tree in trees)
@@ -212,7 +213,7 @@ def stack_regions(parts, table_fill: dict) -> dict:
                     for name in trees[0]["tables"]})
     stacked.update({name: np.stack([pad(t[name], shape, 0.0) for t in trees]) for name, shape in shapes.items()})
     arrays = {"stacked": stacked}
-    if "tables" in trees[0]:
+    if local_subgraph:
         arrays["basis_sources"] = np.concatenate([pad(t["basis_sources"], (t["basis_sources"].shape[0], width), 0.0)
                                                   for t in trees])
     return arrays
