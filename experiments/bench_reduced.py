@@ -5,7 +5,10 @@ builds, for k = 50 and 100, a Galerkin model (relation mixture) and
 interpolation models (relation scale and feature log-linear, r = 2k rows), and
 prints for each: full solve time, online time for the scores of 2,000 nodes,
 their ratio, and the worst Kendall tau / normalised L1 on the top-100 over 20
-fresh parameter points. For both interpolated weightings it also prints the
+fresh parameter points. Each model is timed twice: with the default float64
+readout, and with a float32 readout (``scorer(nodes, dtype=np.float32)``, for
+ranking and display), whose accuracy is measured on its own float32 values at
+each point's reference top-100. For both interpolated weightings it also prints the
 trade-off between edges touched by the interpolation rows and accuracy, over
 cost weights gamma. Last, regional models (``reduction.regions``: one basis per
 k-means region of the parameter domain, chosen online by the nearest centre)
@@ -38,7 +41,7 @@ import numpy as np
 import _timing  # noqa: E402,F401  (puts the checkout on sys.path)
 
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
-from fitrank.metrics import kendall_tau_topk, l1_topk  # noqa: E402
+from fitrank.metrics import kendall_tau_topk, l1_topk, top_k  # noqa: E402
 from fitrank.pagerank import PageRankProblem  # noqa: E402
 from fitrank.reduced import ReductionSettings, build_reduced_model  # noqa: E402
 from fitrank.regions import build_model  # noqa: E402
@@ -68,8 +71,8 @@ def scorer_seconds(fn, arrays, points, passes=3, burst=10) -> tuple[float, float
     return (middle - start) / (passes * len(points)), (end - middle) / (burst * len(points))
 
 
-def compiled_scorer(model, nodes):
-    scorer = model.scorer(nodes)
+def compiled_scorer(model, nodes, dtype=np.float64):
+    scorer = model.scorer(nodes, dtype=dtype)
     fn = jax.jit(scorer.fn)
     return fn, scorer.arrays
 
@@ -80,6 +83,19 @@ def accuracy(model, thetas, exact):
         y = model.vector(theta)
         taus.append(kendall_tau_topk(x, y, k=100))
         l1s.append(l1_topk(x, y, k=100))
+    return float(min(taus)), float(max(l1s))
+
+
+def scorer_accuracy(model, thetas, exact, dtype):
+    """Worst tau and L1 on the top-100, from a scorer of each reference's top-100 nodes in ``dtype``."""
+    taus, l1s, values = [], [], None
+    for theta, x in zip(thetas, exact):
+        top = top_k(x, 100)
+        scorer = model.scorer(top, dtype=dtype)
+        values = values or jax.jit(scorer.fn)  # one function per model: compiled once for every point
+        y = np.asarray(values(jnp.asarray(theta), scorer.arrays))
+        taus.append(kendall_tau_topk(x[top], y, k=top.size))
+        l1s.append(l1_topk(x[top], y, k=top.size))
     return float(min(taus)), float(max(l1s))
 
 
@@ -118,11 +134,15 @@ def main() -> None:
 
         def add(label, model, extra=""):
             tau, l1 = accuracy(model, fresh, exact)
+            tau32, l132 = scorer_accuracy(model, fresh, exact, np.float32)
             record = {"kind": kind, "label": label, "k": model.rank, "tau_top100_min": tau, "l1_top100_max": l1,
+                      "tau_top100_min_f32": tau32, "l1_top100_max_f32": l132,
                       "edges_touched": model.info["edges_touched"], "offline_s": model.info["offline_s"]}
-            entries.append((record, compiled_scorer(model, score_nodes)))
-            print(f"built {kind:9s} {label:13s} k={model.rank:3d}  tau>={tau:.5f}  L1<={l1:.1e}  edges touched "
-                  f"{model.info['edges_touched']:>8d}  offline {model.info['offline_s']:.1f} s{extra}", flush=True)
+            entries.append((record, {"": compiled_scorer(model, score_nodes),
+                                     "_f32": compiled_scorer(model, score_nodes, np.float32)}))
+            print(f"built {kind:9s} {label:13s} k={model.rank:3d}  tau>={tau:.5f}  L1<={l1:.1e}  (float32 readout: "
+                  f"{tau32:.5f}, {l132:.1e})  edges touched {model.info['edges_touched']:>8d}"
+                  f"  offline {model.info['offline_s']:.1f} s{extra}", flush=True)
             return record
 
         for k in ranks:
@@ -153,29 +173,34 @@ def main() -> None:
     # Every timing side by side: each round solves every fresh point in full and runs every reduced
     # model, so a slow spell of this shared machine hits all of them alike; medians over rounds.
     full_times = {kind: [] for kind in kinds}
-    online_times = [([], []) for _ in entries]
+    online_times = [{suffix: ([], []) for suffix in scorers} for _, scorers in entries]
     for _ in range(rounds):
         for kind, data in kinds.items():
             start = time.perf_counter()
             for theta in data["fresh"]:
                 data["problem"].solve(theta)
             full_times[kind].append((time.perf_counter() - start) / len(data["fresh"]))
-        for (record, (fn, arrays)), (going, repeated) in zip(entries, online_times):
-            one, two = scorer_seconds(fn, arrays, kinds[record["kind"]]["points"])
-            going.append(one)
-            repeated.append(two)
+        for (record, scorers), times in zip(entries, online_times):
+            for suffix, (fn, arrays) in scorers.items():
+                one, two = scorer_seconds(fn, arrays, kinds[record["kind"]]["points"])
+                times[suffix][0].append(one)
+                times[suffix][1].append(two)
     print(f"\nonline time per evaluation (scores of 2,000 nodes), medians of {rounds} rounds run side by side;"
-          f" speed-up = full solve / online, going round the {fresh_count} fresh points (repeated: 10 calls at each)")
-    for (record, _), (going, repeated) in zip(entries, online_times):
+          f" speed-up = full solve / online, going round the {fresh_count} fresh points (repeated: 10 calls at each);"
+          f" second line: float32 readout")
+    for (record, _), times in zip(entries, online_times):
         full_s = float(np.median(full_times[record["kind"]]))
-        record.update(full_solve_s=full_s, online_s=float(np.median(going)),
-                      online_repeated_s=float(np.median(repeated)))
-        record.update(speedup=full_s / record["online_s"], speedup_repeated=full_s / record["online_repeated_s"])
-        print(f"{record['kind']:9s} {record['label']:13s} k={record['k']:3d}  full {full_s * 1e3:7.1f} ms"
-              f"  online {record['online_s'] * 1e3:6.3f} ms  x{record['speedup']:6.0f}"
-              f"  (repeated {record['online_repeated_s'] * 1e3:6.3f} ms  x{record['speedup_repeated']:6.0f})"
-              f"  tau>={record['tau_top100_min']:.5f}  L1<={record['l1_top100_max']:.1e}"
-              f"  edges {record['edges_touched']}", flush=True)
+        record["full_solve_s"] = full_s
+        for suffix, (going, repeated) in times.items():
+            online, again = float(np.median(going)), float(np.median(repeated))
+            record.update({f"online{suffix}_s": online, f"online_repeated{suffix}_s": again,
+                           f"speedup{suffix}": full_s / online, f"speedup_repeated{suffix}": full_s / again})
+            head = (f"{record['kind']:9s} {record['label']:13s} k={record['k']:3d}  full {full_s * 1e3:7.1f} ms"
+                    if not suffix else f"{'float32 readout':>36s}")
+            print(f"{head}  online {online * 1e3:6.3f} ms  x{full_s / online:6.0f}"
+                  f"  (repeated {again * 1e3:6.3f} ms  x{full_s / again:6.0f})"
+                  f"  tau>={record['tau_top100_min' + suffix]:.5f}  L1<={record['l1_top100_max' + suffix]:.1e}"
+                  + ("" if suffix else f"  edges {record['edges_touched']}"), flush=True)
 
     def find(kind, label, k=None):
         return next(r for r, _ in entries if r["kind"] == kind and r["label"] == label and (k is None or r["k"] == k))
@@ -186,6 +211,8 @@ def main() -> None:
         "full_solve_s": {kind: float(np.median(times)) for kind, times in full_times.items()},
         "galerkin_s": find("mixture", "galerkin", k)["online_s"],
         "interp_s": {kind: find(kind, "interpolation", k)["online_s"] for kind in ("scale", "features")},
+        "galerkin_f32_s": find("mixture", "galerkin", k)["online_f32_s"],
+        "interp_f32_s": {kind: find(kind, "interpolation", k)["online_f32_s"] for kind in ("scale", "features")},
         "tau_top100_min": {kind: find(kind, "galerkin" if kind == "mixture" else "interpolation", k)["tau_top100_min"]
                            for kind in kinds},
         "l1_top100_max": {kind: find(kind, "galerkin" if kind == "mixture" else "interpolation", k)["l1_top100_max"]
@@ -193,7 +220,9 @@ def main() -> None:
         "k": k,
         "regional": {kind: {name: find(kind, "regional")[name]
                             for name in ("regions", "k", "online_s", "speedup", "online_repeated_s",
-                                         "speedup_repeated", "tau_top100_min", "l1_top100_max")}
+                                         "speedup_repeated", "tau_top100_min", "l1_top100_max", "online_f32_s",
+                                         "speedup_f32", "online_repeated_f32_s", "speedup_repeated_f32",
+                                         "tau_top100_min_f32", "l1_top100_max_f32")}
                      for kind in ("scale", "features")},
         "models": [record for record, _ in entries],
         "tradeoff": {kind: kinds[kind]["tradeoff"] for kind in ("scale", "features")},

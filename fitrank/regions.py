@@ -47,8 +47,8 @@ from fitrank.basis import pod_basis, snapshot_gram, streams
 from fitrank.errors import FitrankInputError
 from fitrank.pagerank import PageRankProblem, certified_bound
 from fitrank.reduced import (ReducedModel, ReductionSettings, Scorer, _assemble, build_reduced_model, enrich,
-                             extend_model, model_from_stored, model_meta, read_model_file, sample_and_solve,
-                             solve_new_points)
+                             extend_model, model_from_stored, model_meta, read_model_file, readout_dtype,
+                             sample_and_solve, solve_new_points)
 
 OVERLAP = 2.0
 """A point joins every region whose squared centre distance is within this factor of its nearest one.
@@ -100,7 +100,7 @@ class RegionalModel:
         """(n,) the reduced approximation of x(theta) by its region's model (sums to 1)."""
         return self.parts[self.region_of(theta)].vector(theta)
 
-    def scorer(self, nodes) -> Scorer:
+    def scorer(self, nodes, dtype=np.float64) -> Scorer:
         """A :class:`~fitrank.reduced.Scorer` of x at ``nodes`` (S,): the region's solve, chosen inside jit.
 
         The regions' solve arrays are padded to one shape and stacked
@@ -110,9 +110,11 @@ class RegionalModel:
         k = 50). The readouts (k, S) stay one array per region, chosen by a
         ``lax.switch`` whose branches are one product each (within 5 us of a
         plain product): indexing a stacked readout copies the region's slice
-        first, 60-140 us at S = 2,000.
+        first, 60-140 us at S = 2,000. ``dtype`` is the readouts' and the
+        values' precision, as in :meth:`fitrank.reduced.ReducedModel.scorer`.
         """
         nodes = np.asarray(nodes, dtype=np.int64)
+        dtype = readout_dtype(dtype)
         if "values" not in self._jitted:
             stacked = stack_regions(self.parts, self.problem.weighting.table_fill)
             solve = self.parts[0].coefficient_fn  # every region's solve is the same function of its arrays
@@ -128,7 +130,7 @@ class RegionalModel:
 
             # stacked once per model: every scorer of it shares the function and these device arrays
             self._jitted.update(values=values, arrays=jax.device_put({**stacked, "centres": self.centres}))
-        readout = tuple(np.ascontiguousarray(part.basis.vectors[nodes].T) for part in self.parts)
+        readout = tuple(np.ascontiguousarray(part.basis.vectors[nodes].T, dtype=dtype) for part in self.parts)
         return Scorer(self._jitted["values"], {**self._jitted["arrays"], "readout": jax.device_put(readout)}, nodes)
 
     def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
@@ -221,7 +223,8 @@ def stack_regions(parts, table_fill: dict) -> dict:
 
 def _read_out(region: int, coefficients, readouts, *, rank: int):
     """x at the scorer's nodes from the padded coefficients of one region (its first ``rank`` are real)."""
-    return coefficients[:rank] @ readouts[region]
+    readout = readouts[region]
+    return coefficients[:rank].astype(readout.dtype) @ readout
 
 
 def _fill(table_fill: dict, name: str):

@@ -391,6 +391,41 @@ def test_scorer_differences_equal_differences_of_scores():
     np.testing.assert_allclose(got, 3.0 * (x[first] - x[second]), rtol=1e-12, atol=1e-15)
 
 
+@pytest.mark.parametrize("kind,method", [("mixture", "galerkin"), ("features", "interpolation")])
+def test_a_float32_scorer_gives_the_float64_values_within_float32_rounding(kind, method):
+    model = _model(kind, method)
+    nodes = np.arange(3, model.problem.graph.n, 11)
+    wide, narrow = model.scorer(nodes), model.scorer(nodes, dtype="float32")
+    assert narrow.fn is wide.fn and narrow.arrays["readout"].dtype == np.float32
+    values = jax.jit(wide.fn)
+    readout = model.basis.vectors[nodes]
+    for theta in _fresh(kind)[0][:3]:
+        point = jnp.asarray(theta)
+        x64, x32 = np.asarray(values(point, wide.arrays)), np.asarray(values(point, narrow.arrays))
+        assert x32.dtype == np.float32
+        # Rounding c and U to float32 and summing k products in float32: |error| <= (k + 2) u sum_i |c_i U_ji|,
+        # u = 2^-24 (Higham, "Accuracy and Stability of Numerical Algorithms", 2nd ed., sec. 3.1).
+        magnitude = np.abs(readout) @ np.abs(model.coefficients(theta))
+        assert np.all(np.abs(x32 - x64) <= (model.rank + 2) * 2.0 ** -24 * magnitude)
+        assert np.abs(x32 - x64).max() <= 1e-5 * np.abs(x64).max()
+
+    def objective(theta, arrays):
+        return jnp.sum(jnp.log(wide.fn(theta, arrays).astype(jnp.float64)))
+
+    theta = jnp.asarray(_fresh(kind)[0][0])
+    gradient = jax.jit(jax.grad(objective))
+    np.testing.assert_allclose(np.asarray(gradient(theta, narrow.arrays)), np.asarray(gradient(theta, wide.arrays)),
+                               rtol=1e-3, atol=1e-6)
+    margins = narrow.differences(np.arange(5), np.arange(5, 10), scale=2.0)
+    assert margins.arrays["readout"].dtype == np.float32
+
+
+@pytest.mark.parametrize("dtype", ["int32", np.float16, "complex128", "no-such-type"])
+def test_a_scorer_refuses_a_readout_dtype_other_than_float64_or_float32(dtype):
+    with pytest.raises(ValueError, match="float64 or float32"):
+        _model("scale", "interpolation").scorer(np.arange(4), dtype=dtype)
+
+
 def test_scorers_of_one_model_share_one_function():
     # Sweeps and the explorer build many scorers on one model; jit caches compiled programs
     # by function and shapes, so scorers of equal-sized node sets must share the function.

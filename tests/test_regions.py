@@ -100,6 +100,19 @@ def test_regional_scorer_picks_the_region_inside_jit_and_its_gradient_matches_fi
                                2.0 * (x[first] - x[second]), rtol=1e-12, atol=1e-15)
 
 
+def test_a_float32_regional_scorer_gives_the_float64_values_within_float32_rounding():
+    model = _model("features", "interpolation", 128, 4)
+    nodes = np.arange(0, model.problem.graph.n, 37)
+    wide, narrow = model.scorer(nodes), model.scorer(nodes, dtype=np.float32)
+    values = jax.jit(wide.fn)
+    for theta in _fresh("features")[0]:
+        x64, x32 = np.asarray(values(jnp.asarray(theta), wide.arrays)), np.asarray(values(jnp.asarray(theta), narrow.arrays))
+        part = model.parts[model.region_of(theta)]
+        # (k + 2) u sum_i |c_i U_ji|, u = 2^-24 (Higham, "Accuracy and Stability of Numerical Algorithms", sec. 3.1)
+        bound = (part.rank + 2) * 2.0 ** -24 * (np.abs(part.basis.vectors[nodes]) @ np.abs(part.coefficients(theta)))
+        assert x32.dtype == np.float32 and np.all(np.abs(x32 - x64) <= bound)
+
+
 def test_save_load_round_trip_and_refusals(tmp_path):
     model = _model("scale", "interpolation", 128, 4)
     path = model.save(tmp_path / "regional.npz")
