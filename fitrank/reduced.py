@@ -220,7 +220,7 @@ class ReducedModel:
         return Scorer(self._jitted["values"], arrays, nodes)
 
     def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
-        """Certified ||x(theta) - U c(theta)||_1 (one full sparse mat-vec)."""
+        """Certified ||x(theta) - y||_1, y = ``vector`` or else ``self.vector(theta)`` (one full sparse mat-vec)."""
         y = self.vector(theta) if vector is None else vector
         return certified_bound(self.problem.operator(theta), y)
 

@@ -45,7 +45,7 @@ from scipy.cluster.vq import kmeans2
 from fitrank.atomic import staged_file
 from fitrank.basis import pod_basis, snapshot_gram, streams
 from fitrank.errors import FitrankInputError
-from fitrank.pagerank import PageRankProblem, certified_bound
+from fitrank.pagerank import PageRankProblem
 from fitrank.reduced import (ReducedModel, ReductionSettings, Scorer, _assemble, build_reduced_model, enrich,
                              extend_model, model_from_stored, model_meta, read_model_file, readout_dtype,
                              sample_and_solve, solve_new_points)
@@ -133,10 +133,8 @@ class RegionalModel:
         readout = tuple(np.ascontiguousarray(part.basis.vectors[nodes].T, dtype=dtype) for part in self.parts)
         return Scorer(self._jitted["values"], {**self._jitted["arrays"], "readout": jax.device_put(readout)}, nodes)
 
-    def certified_bound(self, theta, vector: np.ndarray | None = None) -> float:
-        """Certified ||x(theta) - x_reduced(theta)||_1 (one full sparse mat-vec)."""
-        y = self.vector(theta) if vector is None else vector
-        return certified_bound(self.problem.operator(theta), y)
+    # the same bound of the same residual: it needs only ``vector`` and ``problem``
+    certified_bound = ReducedModel.certified_bound
 
     def save(self, path) -> str:
         """Write every region's model and the centres to one ``.npz`` file (atomically)."""
