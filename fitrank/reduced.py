@@ -139,7 +139,7 @@ class Scorer:
 
         def differenced(columns):
             columns = np.asarray(columns)
-            wide = columns.astype(np.float64)
+            wide = columns.astype(np.float64, copy=False)
             return np.ascontiguousarray((scale * (wide[:, first] - wide[:, second])).astype(columns.dtype))
 
         # a regional model holds one readout per region, hence the tree map
@@ -207,8 +207,7 @@ class ReducedModel:
             solve = self.coefficient_fn
 
             def values(theta, arrays):
-                readout = arrays["readout"]
-                return solve(theta, arrays["solve"]).astype(readout.dtype) @ readout
+                return read_out(solve(theta, arrays["solve"]), arrays["readout"])
 
             # one function per model: scorers of other node sets (and objectives built on
             # them) then share jit's compiled programs whenever the shapes agree
@@ -241,6 +240,11 @@ class ReducedModel:
         arrays = {"vectors": self.basis.vectors, "singular_values": self.basis.singular_values,
                   "lost_energy": np.array(self.basis.lost_energy), "rows": self.rows, "thetas": self.thetas}
         return {prefix + name: value for name, value in arrays.items()}
+
+
+def read_out(coefficients, readout):
+    """Values (S,) = c @ readout, in the readout's precision (c (k,) is always float64)."""
+    return coefficients.astype(readout.dtype) @ readout
 
 
 def readout_dtype(dtype) -> np.dtype:

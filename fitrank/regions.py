@@ -47,7 +47,7 @@ from fitrank.basis import pod_basis, snapshot_gram, streams
 from fitrank.errors import FitrankInputError
 from fitrank.pagerank import PageRankProblem
 from fitrank.reduced import (ReducedModel, ReductionSettings, Scorer, _assemble, build_reduced_model, enrich,
-                             extend_model, model_from_stored, model_meta, read_model_file, readout_dtype,
+                             extend_model, model_from_stored, model_meta, read_model_file, read_out, readout_dtype,
                              sample_and_solve, solve_new_points)
 
 OVERLAP = 2.0
@@ -221,8 +221,7 @@ def stack_regions(parts, table_fill: dict) -> dict:
 
 def _read_out(region: int, coefficients, readouts, *, rank: int):
     """x at the scorer's nodes from the padded coefficients of one region (its first ``rank`` are real)."""
-    readout = readouts[region]
-    return coefficients[:rank].astype(readout.dtype) @ readout
+    return read_out(coefficients[:rank], readouts[region])
 
 
 def _fill(table_fill: dict, name: str):
