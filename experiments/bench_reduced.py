@@ -77,13 +77,15 @@ def compiled_scorer(model, nodes, dtype=np.float64):
     return fn, scorer.arrays
 
 
-def accuracy(model, thetas, exact):
-    taus, l1s = [], []
-    for theta, x in zip(thetas, exact):
-        y = model.vector(theta)
-        taus.append(kendall_tau_topk(x, y, k=100))
-        l1s.append(l1_topk(x, y, k=100))
+def worst_accuracy(exact: list, approximations: list) -> tuple[float, float]:
+    """(worst tau, worst L1) on the top-100 of ``approximations`` (n,) against ``exact`` (n,), point by point."""
+    taus = [kendall_tau_topk(x, y, k=100) for x, y in zip(exact, approximations)]
+    l1s = [l1_topk(x, y, k=100) for x, y in zip(exact, approximations)]
     return float(min(taus)), float(max(l1s))
+
+
+def accuracy(model, thetas, exact):
+    return worst_accuracy(exact, [model.vector(theta) for theta in thetas])
 
 
 def scorer_accuracy(model, thetas, exact, dtype):
