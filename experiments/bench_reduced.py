@@ -30,7 +30,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import tempfile
 import time
 from pathlib import Path
 
@@ -38,7 +37,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-import _timing  # noqa: E402,F401  (puts the checkout on sys.path)
+from _timing import scratch_folder  # noqa: E402  (also puts the checkout on sys.path)
 
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
 from fitrank.metrics import kendall_tau_topk, l1_topk, top_k  # noqa: E402
@@ -121,7 +120,7 @@ def main() -> None:
     rng = np.random.default_rng(args.seed)
 
     kinds, entries = {}, []
-    folder = Path(tempfile.mkdtemp(prefix="fitrank-bench-"))
+    folder = scratch_folder("fitrank-bench-")
     for kind, method in (("mixture", "galerkin"), ("scale", "interpolation"), ("features", "interpolation")):
         edges, pairs, truth = generate_dataset(nodes, args.seed, kind, relations=4, features=3)
         write_dataset(folder / kind, edges, pairs, truth)

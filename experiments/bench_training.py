@@ -21,14 +21,13 @@ from __future__ import annotations
 
 import argparse
 import json
-import tempfile
 import time
 from pathlib import Path
 
 import jax
 import numpy as np
 
-from _timing import median_seconds  # noqa: E402  (also puts the checkout on sys.path)
+from _timing import median_seconds, scratch_folder  # noqa: E402  (also puts the checkout on sys.path)
 
 from fitrank.pipeline import fit  # noqa: E402
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
@@ -82,7 +81,7 @@ def main() -> None:
     args = parser.parse_args()
     nodes = args.nodes or (5_000 if args.quick else 200_000)
     samples = 32 if args.quick else 64
-    folder = Path(tempfile.mkdtemp(prefix="fitrank-bench-training-"))
+    folder = scratch_folder("fitrank-bench-training-")
     out, rows = {}, []
     edges_count = None
     for kind in ("mixture", "scale"):

@@ -29,13 +29,12 @@ from __future__ import annotations
 
 import argparse
 import json
-import tempfile
 from pathlib import Path
 
 import numpy as np
 from scipy.special import softmax
 
-import _timing  # noqa: F401  (puts the checkout on sys.path)
+from _timing import scratch_folder  # noqa: E402  (also puts the checkout on sys.path)
 
 from fitrank.generate import generate_dataset, write_dataset  # noqa: E402
 from fitrank.interpolation import select_rows  # noqa: E402
@@ -144,7 +143,7 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=5)
     args = parser.parse_args()
     nodes = 20_000 if args.quick else 200_000
-    folder = Path(tempfile.mkdtemp(prefix="fitrank-probe-"))
+    folder = scratch_folder("fitrank-probe-")
     rng = np.random.default_rng(args.seed)
     features = feature_log_out_weights(load_problem("features", nodes, args.seed, folder), rng)
     scale_problem = load_problem("scale", nodes, args.seed, folder)

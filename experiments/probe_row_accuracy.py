@@ -32,12 +32,11 @@ from __future__ import annotations
 import argparse
 import dataclasses
 import json
-import tempfile
 from pathlib import Path
 
 import numpy as np
 
-import _timing  # noqa: F401  (puts the checkout on sys.path)
+from _timing import scratch_folder  # noqa: E402  (also puts the checkout on sys.path)
 from bench_reduced import worst_accuracy
 from probe_out_weights import load_problem
 
@@ -107,7 +106,7 @@ def main() -> None:
     parser.add_argument("--seed", type=int, default=5)
     args = parser.parse_args()
     nodes = 20_000 if args.quick else 200_000
-    folder = Path(tempfile.mkdtemp(prefix="fitrank-probe-"))
+    folder = scratch_folder("fitrank-probe-")
     report = {"nodes": nodes, "rank": args.rank}
     for kind in ("features", "scale"):
         problem = load_problem(kind, nodes, args.seed, folder)
