@@ -72,9 +72,11 @@ def _config_arguments(parser: argparse.ArgumentParser) -> None:
 
 def _cmd_build(args: argparse.Namespace) -> int:
     import time
+    from dataclasses import replace
 
     from fitrank.config import load_config
     from fitrank.atomic import refuse_unwritable
+    from fitrank.heldout import held_out_check
     from fitrank.pipeline import model_path, prepare, reduction_settings
     from fitrank.regions import build_model
     from fitrank.snapshots import local_executor
@@ -85,8 +87,15 @@ def _cmd_build(args: argparse.Namespace) -> int:
     _, problem = prepare(config)
     workers = config.reduction.workers
     pool = local_executor(workers) if workers > 1 else None
+    check = config.check
+    held_out = None
     try:
         model = build_model(problem, reduction_settings(config), executor=pool)
+        if check.build_points:
+            held_out = held_out_check(model, check.build_points, top_k=check.top_k, tau_min=check.tau_min,
+                                      l1_max=check.l1_max, tol=config.graph.solver_tol, executor=pool)
+            # saved with the model, so whoever reuses it later can see how far it was trusted
+            model = replace(model, info={**model.info, "held_out": held_out.summary()})
     finally:
         if pool is not None:
             pool.shutdown()
@@ -102,11 +111,24 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if model.method == "interpolation":
         print(f"rows chosen: {info['rows']}, edges touched: {info['edges_touched']} "
               f"({info['edges_touched_fraction']:.1%} of {problem.graph.num_edges})")
+    if held_out is not None:
+        print(_held_out_line(held_out.summary(), check))
     print(f"offline time: {time.perf_counter() - start:.1f} s "
           f"(snapshots {info['timings']['snapshots_s']:.1f} s, basis {info['timings']['basis_s']:.1f} s, "
           f"assembly {info['timings']['assemble_s']:.1f} s)")
     print(f"saved {path}")
     return 0
+
+
+def _held_out_line(summary: dict, check) -> str:
+    k = summary["top_k"]
+    verdict = (f"within check.tau_min = {check.tau_min:g} and check.l1_max = {check.l1_max:g}" if summary["passed"]
+               else f"outside check.tau_min = {check.tau_min:g} or check.l1_max = {check.l1_max:g}: more "
+                    "reduction.samples, a larger basis (reduction.rank, max_rank) or reduction.regions would help; "
+                    "a fit still checks its answer with a full solve and enriches the model")
+    return (f"held-out check at {summary['points']} fresh points ({summary['seconds']:.1f} s): worst tau@{k} "
+            f"{summary['tau_topk_min']:.5f}, worst L1@{k} {summary['l1_topk_max']:.1e}, L1 error "
+            f"{summary['error_max']:.1e} (certified bound {summary['bound_max']:.1e}) -> {verdict}")
 
 
 COMPILE_CACHE_VARIABLE = "FITRANK_COMPILE_CACHE"

@@ -175,6 +175,9 @@ class CheckSection:
     enrich_rounds: int = _key(2, "most enrichment rounds when the check fails", "int", low=0)
     path_points: int = _key(0, "extra points of the optimisation path added to the snapshots per round", "int",
                             low=0)
+    build_points: int = _key(4, "fresh parameter points (past the samples) at which fitrank build compares the "
+                                "new model with full solves, reporting the worst tau, L1 and certified bound "
+                                "against tau_min and l1_max; 0 = none", "int", low=0)
 
 
 @dataclass(frozen=True)

@@ -9,6 +9,9 @@ Three numbers, all computed with NumPy on plain arrays:
 * :func:`pair_accuracy`: weighted fraction of preference pairs that a score
   vector orders correctly.
 
+:func:`agreement_with_solve` and :func:`within_tolerance` apply the first two
+to a reduced vector against a full solve, as every check of a reduced model does.
+
 The top-k of a vector is taken by value, largest first; equal values at the
 cut are broken by the lower node index so that the choice is deterministic.
 """
@@ -100,6 +103,39 @@ def l1_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100) -> float:
     if scale == 0.0:
         return 0.0 if error == 0.0 else float("inf")
     return error / scale
+
+
+def agreement_with_solve(x: np.ndarray, y: np.ndarray, *, k: int = 100,
+                         x_bound: float = 0.0) -> tuple[float, float]:
+    """(tau, L1) of an approximation ``y`` on the top-k of a full solve ``x``.
+
+    ``x`` is itself only certified to within ``x_bound`` (L1): an entry of ``y``
+    that close to ``x`` is as good as ``x``, and the order it gives nodes that
+    ``x`` ties (symmetric nodes, differences at rounding level) is noise, so
+    such entries take x's value for tau.
+
+    Args:
+      x: (n,) full solution.
+      y: (n,) approximation.
+      k: size of the top set.
+      x_bound: certified L1 error of ``x``.
+
+    Returns:
+      (:func:`kendall_tau_topk` of the resolved ``y``, :func:`l1_topk` of ``y``).
+    """
+    x, y = _same_length(x, y)
+    resolved = np.where(np.abs(y - x) <= x_bound, x, y)
+    return kendall_tau_topk(x, resolved, k=k), l1_topk(x, y, k=k)
+
+
+def within_tolerance(x: np.ndarray, tau: float, l1: float, *, k: int, tau_min: float, l1_max: float) -> bool:
+    """Whether (tau, L1) from :func:`agreement_with_solve` meet ``tau_min`` and ``l1_max``.
+
+    tau is undefined (NaN) when ``x`` ties its whole top-k (or k = 1): there is
+    no order to reproduce, and only L1 decides.
+    """
+    order_ok = tau >= tau_min if np.isfinite(tau) else np.ptp(_vector(x, "x")[top_k(x, k)]) == 0
+    return bool(order_ok and l1 <= l1_max)
 
 
 def pair_accuracy(scores: np.ndarray, pairs: Pairs) -> float:

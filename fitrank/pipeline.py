@@ -27,7 +27,7 @@ from fitrank.atomic import link_or_copy, refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
 from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.graph import SPLITS, Dataset
-from fitrank.metrics import kendall_tau_topk, l1_topk, top_k
+from fitrank.metrics import agreement_with_solve, within_tolerance
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
 from fitrank.pagerank import PageRankProblem, certified_bound, solve_operator
 from fitrank.reduced import ReducedModel, ReductionSettings
@@ -152,13 +152,7 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
     if model is not None:
         y = model.vector(theta)
         k = config.check.top_k
-        # x is itself only certified to within its bound: a reduced value that close to it is as
-        # good as x, and the order it gives nodes that x ties (symmetric nodes, differences at
-        # rounding level) is noise that must not fail the check.
-        resolved = np.where(np.abs(y - x) <= solved.report.bound, x, y)
-        tau, l1 = kendall_tau_topk(x, resolved, k=k), l1_topk(x, y, k=k)
-        # tau is undefined (NaN) when x ties its whole top-k (k = 1 too): no order to reproduce.
-        order_ok = tau >= config.check.tau_min if np.isfinite(tau) else np.ptp(x[top_k(x, k)]) == 0
+        tau, l1 = agreement_with_solve(x, y, k=k, x_bound=solved.report.bound)
         report["reduced"] = {name: pair_summary(y, pairs, spec) for name, pairs in splits.items()}
         report.update({
             "top_k": k,
@@ -166,7 +160,7 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
             "l1_topk": l1,
             "l1_error": float(np.abs(x - y).sum()),
             "certified_bound": certified_bound(op, y),
-            "passed": bool(order_ok and l1 <= config.check.l1_max),
+            "passed": within_tolerance(x, tau, l1, k=k, tau_min=config.check.tau_min, l1_max=config.check.l1_max),
         })
     else:
         report["passed"] = True

@@ -54,6 +54,7 @@ def solve_snapshots(
     chunk_size: int | None = None,
     out: np.ndarray | None = None,
     progress: bool = True,
+    label: str = "snapshots",
 ) -> np.ndarray:
     """Full PageRank vectors at each parameter point.
 
@@ -67,6 +68,7 @@ def solve_snapshots(
       out: optional (n, m) float64 array to fill, e.g. a ``np.memmap`` for
         snapshot sets larger than memory.
       progress: show a progress bar (counts and ETA) on stderr.
+      label: what the progress bar calls the solves.
 
     Returns:
       (n, m) float64 snapshot matrix, column s = x(thetas[s]) (``out`` if given).
@@ -80,7 +82,7 @@ def solve_snapshots(
     workers = getattr(executor, "_max_workers", 1) if executor is not None else 1
     size = chunk_size or max(1, -(-m // (4 * workers)))
     starts = list(range(0, m, size))
-    bar = _progress_bar(m, "snapshots", progress)
+    bar = _progress_bar(m, label, progress)
     args = (problem.weighting.kind, problem.weighting.options, problem.damping, problem.teleport, problem.dangling)
     try:
         if executor is None:

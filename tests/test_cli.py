@@ -8,6 +8,8 @@ import subprocess
 import sys
 import tomllib
 
+import numpy as np
+
 from fitrank.cli import main
 from fitrank.config import config_keys
 
@@ -30,6 +32,21 @@ def test_build_saves_the_model_and_reports_it(tmp_path, capsys):
     assert (tmp_path / "m.npz").is_file()
     for words in ("k = ", "singular values", "rows chosen", "edges touched", "offline time"):
         assert words in out
+    assert "held-out check at 4 fresh points" in out
+    with np.load(tmp_path / "m.npz") as saved:
+        held_out = json.loads(str(saved["meta"]))["info"]["held_out"]
+    assert held_out["points"] == 4 and held_out["bound_max"] >= held_out["error_max"]
+    # the printed verdict is the saved one (24 samples may or may not reach tau 0.999 here)
+    assert ("-> within check.tau_min" in out) == held_out["passed"]
+    assert f"worst tau@100 {held_out['tau_topk_min']:.5f}" in out
+
+
+def test_build_says_when_the_held_out_check_misses_the_tolerances(tmp_path, capsys):
+    config = _config(tmp_path)
+    assert main(["build", str(config), "--set", f'reduction.model="{tmp_path / "m.npz"}"', "--set",
+                 "reduction.rank=2", "--set", "check.build_points=2"]) == 0
+    out = capsys.readouterr().out
+    assert "held-out check at 2 fresh points" in out and "-> outside check.tau_min" in out
 
 
 def test_settings_prints_every_key_and_round_trips(tmp_path, capsys):
