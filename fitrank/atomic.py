@@ -14,6 +14,7 @@ import shutil
 import tempfile
 from pathlib import Path
 
+from fitrank import interrupt
 from fitrank.errors import ConfigError, FitrankInputError
 
 
@@ -47,6 +48,38 @@ def refuse_unwritable(target: str | Path, *, folder: bool, key: str | None = Non
         raise ConfigError(key, reason) if key else FitrankInputError(reason)
 
 
+def refuse_replacing_foreign(folder: str | Path, *, own: frozenset[str], inputs=(), key: str | None = None) -> None:
+    """Raise unless replacing ``folder`` as a whole loses nothing but an earlier result of the same kind.
+
+    :func:`staged_folder` swaps the whole folder for the new one, so a folder
+    that holds anything else (the input tables, the config, a user's notes)
+    would be lost with it.
+
+    Args:
+      folder: the folder to be replaced.
+      own: the names of the entries a result of this kind consists of.
+      inputs: files the work reads or keeps apart from its result; none may lie inside ``folder``.
+      key: the config key that sets ``folder`` (the error is then a ConfigError naming it).
+
+    Raises:
+      FitrankInputError (ConfigError with ``key``): ``folder`` holds an input or a foreign entry.
+    """
+    folder = Path(folder).resolve()
+    reason = None
+    inside = [Path(path) for path in inputs if path and Path(path).resolve().is_relative_to(folder)]
+    if inside:
+        reason = (f"{folder} holds {inside[0]}, which this run reads or keeps, and a run replaces its whole "
+                  "folder; choose another output folder")
+    elif folder.is_dir():
+        foreign = sorted(entry.name for entry in folder.iterdir() if entry.name not in own)
+        if foreign:
+            listed = ", ".join(foreign[:3]) + (", ..." if len(foreign) > 3 else "")
+            reason = (f"{folder} holds files that are not a run's ({listed}), and a run replaces its whole "
+                      "folder; choose a new or empty folder")
+    if reason is not None:
+        raise ConfigError(key, reason) if key else FitrankInputError(reason)
+
+
 @contextlib.contextmanager
 def staged_folder(target: str | Path):
     """Yield a fresh temporary folder beside ``target``; on success it replaces ``target``.
@@ -59,6 +92,7 @@ def staged_folder(target: str | Path):
     staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     try:
         yield staging
+        interrupt.checkpoint()  # an interrupted run never replaces an earlier result
         os.chmod(staging, 0o755)  # mkdtemp makes it private
         if target.exists():
             old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
@@ -81,6 +115,7 @@ def staged_file(target: str | Path, suffix: str = ""):
     os.close(handle)
     try:
         yield Path(temp)
+        interrupt.checkpoint()
         os.chmod(temp, 0o644)  # mkstemp makes it private
         os.replace(temp, target)
     finally:

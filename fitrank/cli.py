@@ -12,10 +12,18 @@ import os
 import sys
 
 from fitrank.errors import FitrankInputError
+from fitrank.interrupt import checkpoint, handling_interrupts
+
+
+class _Parser(argparse.ArgumentParser):
+    """argparse with a one-line error: the message and where the help is, not the whole usage block."""
+
+    def error(self, message):
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
 def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _Parser(
         prog="fitrank",
         description="Learn edge-weight parameters so that PageRank agrees with preference pairs.",
     )
@@ -75,14 +83,13 @@ def _cmd_build(args: argparse.Namespace) -> int:
     from dataclasses import replace
 
     from fitrank.config import load_config
-    from fitrank.atomic import refuse_unwritable
     from fitrank.heldout import held_out_check
-    from fitrank.pipeline import model_path, prepare, reduction_settings
+    from fitrank.pipeline import model_path, prepare, reduction_settings, refuse_bad_outputs
     from fitrank.regions import build_model
     from fitrank.snapshots import local_executor
 
     config = load_config(args.config, args.overrides)
-    refuse_unwritable(model_path(config), folder=False, key="reduction.model")
+    refuse_bad_outputs(config, run=False)
     start = time.perf_counter()
     _, problem = prepare(config)
     workers = config.reduction.workers
@@ -192,14 +199,17 @@ def _cmd_generate(args: argparse.Namespace) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
-    try:
-        return int(args.func(args) or 0)
-    except FitrankInputError as err:
-        print(f"fitrank {args.command}: error: {err}", file=sys.stderr)
-        return 2
-    except KeyboardInterrupt:
-        print(f"fitrank {args.command}: interrupted", file=sys.stderr)
-        return 130
+    with handling_interrupts():
+        try:
+            status = int(args.func(args) or 0)
+            checkpoint()  # a Ctrl-C that came where it had to wait still ends the command as interrupted
+            return status
+        except FitrankInputError as err:
+            print(f"fitrank {args.command}: error: {err}", file=sys.stderr)
+            return 2
+        except KeyboardInterrupt:
+            print(f"fitrank {args.command}: interrupted", file=sys.stderr)
+            return 130
 
 
 if __name__ == "__main__":

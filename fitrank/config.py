@@ -96,8 +96,9 @@ class GraphSection:
 class WeightingSection:
     kind: str = _key("scale", "edge-weight parameterisation: mixture (softmax relation mixture), scale "
                               "(per-relation scale), features (log-linear in edge features)", "str", choices=KINDS)
-    bound: float | None = _key(None, "half-width of the parameter box sampled offline (scale, features); "
-                                     "\"auto\" = the weighting's own", "float?", low=0.0, low_open=True)
+    bound: float | None = _key(None, "half-width of the parameter box sampled offline (scale, features), at most "
+                                     "50 (relation weights e^100 apart, far beyond any useful weighting); "
+                                     "\"auto\" = the weighting's own", "float?", low=0.0, low_open=True, high=50.0)
 
 
 @dataclass(frozen=True)
@@ -237,7 +238,7 @@ def load_config(path: str | Path, overrides: list[str] | tuple[str, ...] = (), *
     except (OSError, UnicodeDecodeError) as err:
         raise FitrankInputError(f"{path}: cannot read the config file ({err})") from None
     try:
-        raw = tomllib.loads(text)
+        raw = tomllib.loads(text.removeprefix("\ufeff"))  # a byte-order mark, as some editors save UTF-8
     except tomllib.TOMLDecodeError as err:
         raise FitrankInputError(f"{path}: not valid TOML: {err}") from None
     return parse_config(raw, base_dir=path.resolve().parent, source=path.resolve(), overrides=overrides,

@@ -309,7 +309,8 @@ def check_teleport(teleport, n: int) -> np.ndarray:
         raise FitrankInputError(f"teleport vector has a non-finite entry at node index {int(np.argmin(np.isfinite(v)))}")
     if np.any(v < 0):
         raise FitrankInputError(f"teleport vector has a negative entry at node index {int(np.argmax(v < 0))}")
-    total = v.sum()
-    if total <= 0:
+    peak = v.max()
+    if peak <= 0:
         raise FitrankInputError("teleport vector is all zero; give at least one node a positive weight")
-    return v / total
+    v = v / peak  # only ratios count; this keeps the sum within the float range
+    return v / v.sum()

@@ -98,7 +98,7 @@ def held_out_check(model: ReducedModel | RegionalModel, points: int = 4, *, top_
     for theta, x in zip(thetas, solutions.T):
         y = model.vector(theta)
         point_tau, point_l1 = agreement_with_solve(x, y, k=top_k, x_bound=tol)
-        passed &= within_tolerance(x, point_tau, point_l1, k=top_k, tau_min=tau_min, l1_max=l1_max)
+        passed &= within_tolerance(x, point_tau, point_l1, k=top_k, tau_min=tau_min, l1_max=l1_max, x_bound=tol)
         tau.append(point_tau)
         l1.append(point_l1)
         bound.append(model.certified_bound(theta, y))

@@ -44,7 +44,8 @@ def top_k(x_ref: np.ndarray, k: int = 100) -> np.ndarray:
     return np.argsort(-x_ref, kind="stable")[:k].astype(np.int64)
 
 
-def kendall_tau_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100) -> float:
+def kendall_tau_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100, *,
+                     reference_resolution: float | None = None) -> float:
     """Kendall's tau-b of ``x_ref`` and ``y`` on the top-k nodes of ``x_ref``.
 
     tau_b = sum_{i<j} s_x(i,j) s_y(i,j) / sqrt(T_x T_y) with s(i, j) the sign of
@@ -52,12 +53,21 @@ def kendall_tau_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100) -> float:
     tied in that vector; without ties it is (concordant - discordant) / (k(k-1)/2).
     One swapped adjacent pair among k = 100 costs 2 / 4950, about 4e-4.
 
+    With ``reference_resolution`` the pairs whose ``x_ref`` values differ by at
+    most that much are left out of every count: the reference cannot order
+    them (an exact tie, or a difference below its own error), so the order
+    ``y`` gives them neither helps nor hurts. Plain tau-b would count y's
+    breaking of the reference's ties against it (T_y > T_x) even where y is
+    exact to rounding.
+
     Cost: O(k^2) time, memory bounded by row blocks (k = 100: 10^4 pairs).
 
     Args:
       x_ref: (n,) reference vector (e.g. the full PageRank solution).
       y: (n,) approximation on the same nodes.
       k: size of the top set, capped at n.
+      reference_resolution: None for plain tau-b, else the smallest difference
+        of ``x_ref`` values that counts as an order (>= 0).
 
     Returns:
       tau_b in [-1, 1]; NaN when either restricted vector is constant (tau is
@@ -73,8 +83,12 @@ def kendall_tau_topk(x_ref: np.ndarray, y: np.ndarray, k: int = 100) -> float:
     agree = untied_a = untied_b = 0.0
     rows = max(1, _BLOCK_ENTRIES // max(1, a.size))
     for start in range(0, a.size, rows):
-        sa = np.sign(a[start:start + rows, None] - a[None, :])
+        difference = a[start:start + rows, None] - a[None, :]
+        sa = np.sign(difference)
         sb = np.sign(b[start:start + rows, None] - b[None, :])
+        if reference_resolution is not None:
+            orderable = np.abs(difference) > reference_resolution
+            sa, sb = sa * orderable, sb * orderable
         # Summing over all ordered pairs counts each pair twice in every term, so the ratio is unchanged.
         agree += float(np.sum(sa * sb))
         untied_a += float(np.sum(np.abs(sa)))
@@ -109,10 +123,11 @@ def agreement_with_solve(x: np.ndarray, y: np.ndarray, *, k: int = 100,
                          x_bound: float = 0.0) -> tuple[float, float]:
     """(tau, L1) of an approximation ``y`` on the top-k of a full solve ``x``.
 
-    ``x`` is itself only certified to within ``x_bound`` (L1): an entry of ``y``
-    that close to ``x`` is as good as ``x``, and the order it gives nodes that
-    ``x`` ties (symmetric nodes, differences at rounding level) is noise, so
-    such entries take x's value for tau.
+    ``x`` is itself only certified to within ``x_bound`` (L1), so it orders
+    two nodes only when their values differ by more than that; the order ``y``
+    gives the others (symmetric nodes, exact ties, differences at rounding
+    level) is noise and does not count (``reference_resolution`` of
+    :func:`kendall_tau_topk`).
 
     Args:
       x: (n,) full solution.
@@ -121,20 +136,24 @@ def agreement_with_solve(x: np.ndarray, y: np.ndarray, *, k: int = 100,
       x_bound: certified L1 error of ``x``.
 
     Returns:
-      (:func:`kendall_tau_topk` of the resolved ``y``, :func:`l1_topk` of ``y``).
+      (tau on the pairs ``x`` orders, :func:`l1_topk` of ``y``).
     """
-    x, y = _same_length(x, y)
-    resolved = np.where(np.abs(y - x) <= x_bound, x, y)
-    return kendall_tau_topk(x, resolved, k=k), l1_topk(x, y, k=k)
+    return kendall_tau_topk(x, y, k=k, reference_resolution=x_bound), l1_topk(x, y, k=k)
 
 
-def within_tolerance(x: np.ndarray, tau: float, l1: float, *, k: int, tau_min: float, l1_max: float) -> bool:
+def within_tolerance(x: np.ndarray, tau: float, l1: float, *, k: int, tau_min: float, l1_max: float,
+                     x_bound: float = 0.0) -> bool:
     """Whether (tau, L1) from :func:`agreement_with_solve` meet ``tau_min`` and ``l1_max``.
 
-    tau is undefined (NaN) when ``x`` ties its whole top-k (or k = 1): there is
-    no order to reproduce, and only L1 decides.
+    tau is undefined (NaN) when ``x`` orders no pair of its top-k (all within
+    ``x_bound`` of each other, or k = 1): there is no order to reproduce, and
+    only L1 decides. It is NaN too when ``y`` ties every pair that ``x``
+    orders, which fails.
     """
-    order_ok = tau >= tau_min if np.isfinite(tau) else np.ptp(_vector(x, "x")[top_k(x, k)]) == 0
+    if np.isfinite(tau):
+        order_ok = tau >= tau_min
+    else:
+        order_ok = np.ptp(_vector(x, "x")[top_k(x, k)]) <= x_bound
     return bool(order_ok and l1 <= l1_max)
 
 

@@ -107,8 +107,9 @@ def calibrate(spec: ObjectiveSpec, x: np.ndarray, pairs: Pairs, *, n: int) -> Ob
     gaps = n * np.abs(x[pairs.other] - x[pairs.preferred])
     gaps = gaps[gaps > 0]
     if gaps.size == 0:
-        raise FitrankInputError(f"cannot choose the {get_loss(spec.loss).param_name} automatically: every pair is "
-                                "tied at theta0; set it in the config")
+        name = get_loss(spec.loss).param_name
+        raise FitrankInputError(f"cannot choose the {name} automatically: every training pair is tied at theta0; "
+                                f"set training.{name} in the config")
     return ObjectiveSpec(spec.loss, AUTO_FRACTION * float(np.median(gaps)), spec.regularization)
 
 

@@ -207,8 +207,13 @@ def walk_operator(
         # caught here, a solver would iterate to maxiter on NaN before failing
         bad = int(np.argmin(np.isfinite(p)))
         source, target = graph.node_ids[graph.src[bad]], graph.node_ids[graph.dst[bad]]
-        raise FitrankInputError(f"the {weighting.kind} weighting gives a non-finite transition probability on the "
-                                f"edge {source} -> {target}; check that edge's weight and features")
+        where = f"the {weighting.kind} weighting gives a non-finite transition probability on the edge {source} -> {target}"
+        theta0 = np.asarray(weighting.transition(weighting.theta0, weighting.tables, xp=np), dtype=np.float64)
+        if np.all(np.isfinite(theta0)):  # the data are fine: these parameters are too far out for float64
+            raise FitrankInputError(
+                f"{where} at parameters this far out (largest |theta| = {np.abs(theta).max():.3g}): its weights "
+                "leave the float range; narrow weighting.bound or raise training.regularization")
+        raise FitrankInputError(f"{where}; check that edge's weight and features")
     leak = weighting.leak_basis @ np.asarray(weighting.leak_coefficients(theta, xp=np), dtype=np.float64)
     return WalkOperator(graph.matrix(p), leak, v, float(damping), dangling, p,
                         functools.partial(cached_sweep_plan, graph))

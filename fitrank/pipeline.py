@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from fitrank.atomic import link_or_copy, refuse_unwritable, staged_folder
+from fitrank.atomic import link_or_copy, refuse_replacing_foreign, refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
 from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.graph import SPLITS, Dataset
@@ -39,6 +39,9 @@ from fitrank.weightings import make_weighting
 
 RESULT_FILE = "result.json"
 MODEL_FILE = "model.npz"
+PLOT_FILES = ("loss.png", "weights.png", "singular_values.png")
+RUN_ENTRIES = frozenset(("config.toml", RESULT_FILE, "history.csv", "scores.parquet", MODEL_FILE, *PLOT_FILES))
+"""Everything :func:`write_run` may put in a run folder: a folder holding anything else is not replaced."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -127,6 +130,39 @@ def obtain_model(config: Config, problem: PageRankProblem, *, executor=None, pro
     return model, False
 
 
+def refuse_bad_outputs(config: Config, *, run: bool) -> None:
+    """Raise before any solving if an output of ``config`` cannot be written or would destroy something.
+
+    Args:
+      config: the run's config.
+      run: a whole run folder will be written (``fitrank fit``), not only the model (``fitrank build``).
+
+    Raises:
+      ConfigError: naming the key of the output path at fault.
+    """
+    if run:
+        run_dir = Path(config.output.folder)
+        refuse_unwritable(run_dir, folder=True, key="output.folder")
+        kept = [config.source, config.data.edges, config.data.pairs, config.data.nodes,
+                config.reduction.snapshot_file]
+        if model_path(config).resolve() != (run_dir / MODEL_FILE).resolve():
+            kept.append(model_path(config))  # a shared model elsewhere in the run folder would go with it
+        refuse_replacing_foreign(run_dir, own=RUN_ENTRIES, key="output.folder", inputs=kept)
+    if config.reduction.model or not run:
+        refuse_unwritable(model_path(config), folder=False, key="reduction.model")
+    snapshots = config.reduction.snapshot_file
+    if snapshots:
+        refuse_unwritable(snapshots, folder=False, key="reduction.snapshot_file")
+        if Path(snapshots).is_file() and not _is_npy(snapshots):
+            raise ConfigError("reduction.snapshot_file", f"{snapshots} exists and is not a .npy file, and the "
+                              "snapshot matrix would overwrite it; choose another path")
+
+
+def _is_npy(path) -> bool:
+    with open(path, "rb") as handle:
+        return handle.read(6) == b"\x93NUMPY"
+
+
 def _same_build(a: ReductionSettings, b: ReductionSettings) -> bool:
     keys = ("method", "samples", "rank", "energy", "max_rank", "rows", "gamma", "edge_budget", "seed", "regions")
     return all(getattr(a, k) == getattr(b, k) for k in keys)
@@ -160,7 +196,8 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
             "l1_topk": l1,
             "l1_error": float(np.abs(x - y).sum()),
             "certified_bound": certified_bound(op, y),
-            "passed": within_tolerance(x, tau, l1, k=k, tau_min=config.check.tau_min, l1_max=config.check.l1_max),
+            "passed": within_tolerance(x, tau, l1, k=k, tau_min=config.check.tau_min, l1_max=config.check.l1_max,
+                                       x_bound=solved.report.bound),
         })
     else:
         report["passed"] = True
@@ -194,9 +231,7 @@ def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = N
         config = replace(config, output=replace(config.output, folder=Path(out).resolve()))
     run_dir = Path(config.output.folder)
     if write:
-        refuse_unwritable(run_dir, folder=True, key="output.folder")
-        if config.reduction.model:
-            refuse_unwritable(model_path(config), folder=False, key="reduction.model")
+        refuse_bad_outputs(config, run=True)
     timings = {}
     tick = time.perf_counter()
     dataset, problem = prepare(config)
@@ -374,10 +409,11 @@ def _write_plots(result: FitResult, folder: Path) -> None:
     from fitrank.plots import plot_singular_values, plot_training, plot_weights
 
     weighting = result.problem.weighting
-    plot_training(result.history, folder / "loss.png")
-    plot_weights(weighting.param_names, result.theta, weighting.theta0, folder / "weights.png")
+    training, weights, singular_values = PLOT_FILES
+    plot_training(result.history, folder / training)
+    plot_weights(weighting.param_names, result.theta, weighting.theta0, folder / weights)
     if result.model is not None:
-        plot_singular_values(np.asarray(result.model.info["singular_values"]), folder / "singular_values.png",
+        plot_singular_values(np.asarray(result.model.info["singular_values"]), folder / singular_values,
                              rank=result.model.rank)
 
 

@@ -14,6 +14,7 @@ import functools
 import json
 import os
 import time
+import zipfile
 from concurrent.futures import Executor
 from dataclasses import asdict, dataclass, field, replace
 from typing import Callable
@@ -356,6 +357,7 @@ def sample_and_solve(problem: PageRankProblem, settings: ReductionSettings, *, e
     thetas = problem.weighting.sample(settings.samples, seed=settings.seed)
     out = None
     if settings.snapshot_path:
+        os.makedirs(os.path.dirname(os.path.abspath(settings.snapshot_path)), exist_ok=True)
         out = np.lib.format.open_memmap(settings.snapshot_path, mode="w+", dtype=np.float64,
                                         shape=(problem.graph.n, thetas.shape[0]))
     snapshots = solve_snapshots(problem, thetas, tol=settings.snapshot_tol, executor=executor, out=out,
@@ -427,7 +429,7 @@ def read_model_file(path: str, problem: PageRankProblem) -> tuple[dict, dict[str
         with np.load(path, allow_pickle=False) as data:
             meta = json.loads(str(data["meta"]))
             stored = {name: data[name] for name in data.files if name != "meta"}
-    except (OSError, KeyError, ValueError) as err:
+    except (OSError, EOFError, zipfile.BadZipFile, KeyError, ValueError) as err:  # empty, cut short, not ours
         raise FitrankInputError(f"{path}: not a readable fitrank reduced model ({err})") from None
     if meta.get("format") != FORMAT_VERSION:
         raise FitrankInputError(f"{path}: model format {meta.get('format')} is not supported (expected {FORMAT_VERSION})")

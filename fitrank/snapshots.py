@@ -16,6 +16,7 @@ from concurrent.futures import Executor, ProcessPoolExecutor, as_completed
 
 import numpy as np
 
+from fitrank import interrupt
 from fitrank.graph import Graph
 from fitrank.pagerank import PageRankProblem
 from fitrank.weightings import make_weighting
@@ -89,6 +90,7 @@ def solve_snapshots(
             for start in starts:
                 out[:, start:start + size] = _solve_chunk(problem.graph, *args, thetas[start:start + size], tol, maxiter)
                 bar.update(min(size, m - start))
+                interrupt.checkpoint()
         else:
             futures = {executor.submit(_solve_chunk, problem.graph, *args, thetas[start:start + size], tol, maxiter): start
                        for start in starts}
@@ -96,6 +98,7 @@ def solve_snapshots(
                 start = futures[future]
                 out[:, start:start + size] = future.result()
                 bar.update(min(size, m - start))
+                interrupt.checkpoint()
     finally:
         bar.close()
     return out

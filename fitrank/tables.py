@@ -250,6 +250,7 @@ def read_pairs(
     if "weight" in table.column_names:
         weight = _numbers(table, "weight", path)
         _require_positive(weight, path, "weight")
+        weight = _with_finite_sum(weight, path, "weight", notes)
     if "split" in table.column_names:
         split = _split_codes(table, path)
     else:
@@ -311,15 +312,19 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
         raise DataError(path, "not a regular file")
     try:
         table = _read_csv(file, text_columns) if kind == "CSV" else _read_parquet(file, text_columns)
-    except (pa.ArrowException, OSError) as err:
+        names = table.column_names
+    except (pa.ArrowException, OSError, UnicodeDecodeError) as err:  # the last: a header that is not UTF-8
         message = (str(err).strip().splitlines() or [type(err).__name__])[0]
         if "Empty CSV file" in message:
             raise DataError(path, "the file is empty (no header row)") from None
         row = None
-        if kind == "CSV" and "CSV parse error" in message:
-            row, message = _csv_error_row(file, text_columns, message)
+        if kind == "CSV":
+            not_text = _not_csv_text(file)
+            if not_text is not None:
+                raise DataError(path, not_text[1], not_text[0]) from None
+            if "CSV parse error" in message:
+                row, message = _csv_error_row(file, text_columns, message)
         raise DataError(path, f"cannot read as {kind}: {message}", row) from None
-    names = table.column_names
     repeated = [c for i, c in enumerate(names) if c in names[:i]]
     if repeated:
         raise DataError(path, "the column name appears twice in the header" + _header_hint(names), column=repeated[0])
@@ -368,6 +373,29 @@ def _csv_error_row(file: Path, text_columns: tuple[str, ...], message: str) -> t
             header_row = 1
             return int(found.group(1)) - header_row, str(err)[found.end() :].splitlines()[0]
     return None, message
+
+
+def _not_csv_text(file: Path) -> tuple[int | None, str] | None:
+    """(data row or None, problem) when a CSV file that Arrow refused is not UTF-8 text at all; else None.
+
+    Arrow's own messages then print raw bytes or a column number only.
+    """
+    with pa.input_stream(str(file), compression="detect") as stream:
+        data = stream.read()
+    if data[:4] == b"PAR1":
+        return None, "this is a Parquet file, not CSV text; give it a .parquet name"
+    if b"\x00" in data[:65536]:
+        return None, "not a text file (it holds NUL bytes); give a CSV or Parquet table"
+    row = -1  # the header is row 0; blank lines are not rows (as for Arrow)
+    for line in data.split(b"\n"):
+        if not line.strip():
+            continue
+        row += 1
+        try:
+            line.decode("utf-8")
+        except UnicodeDecodeError:
+            return (row or None), f"{'the header' if row == 0 else 'this row'} is not UTF-8 text; save the file as UTF-8"
+    return None
 
 
 def _header_hint(names: list[str]) -> str:
@@ -643,6 +671,21 @@ def _require_positive(values: np.ndarray, path: str | Path, column: str, allow_z
     _raise_first(path, ~ok, lambda r: f"{column} must be a finite number {bound}, got {float(values[r])!r}", column)
 
 
+def _with_finite_sum(values: np.ndarray, path: str | Path, column: str, notes: list[str]) -> np.ndarray:
+    """``values`` (finite, >= 0), divided by their largest when they would sum beyond the float range.
+
+    They count only relative to their sum, which would otherwise turn every
+    one of them into 0 or NaN; the common factor changes nothing else.
+    """
+    with np.errstate(over="ignore"):
+        total = values.sum()
+    if np.isfinite(total):
+        return values
+    notes.append(f"{path}: column {column} divided by its largest value {values.max():.3g}, so that it sums "
+                 "within the float range (only ratios count)")
+    return values / values.max()
+
+
 # --------------------------------------------------------------------------- edge table
 
 
@@ -809,6 +852,8 @@ def _refuse_overflowing_out_weight(
         if np.isfinite(base.sum()):  # one cheap pass: no node's share can overflow then
             return
         overflow = ~np.isfinite(np.bincount(src, weights=base, minlength=node_ids.shape[0]))
+    if not overflow.any():  # only the total overflows, which nothing uses
+        return
     node = int(overflow.argmax())
     row = int(order[src == node].min())
     raise DataError(
@@ -846,6 +891,7 @@ def _teleport(table: pa.Table, path: str | Path, codes: np.ndarray, n: int, note
     """(n,) teleport weights from the node table; unlisted nodes get 0."""
     values = _numbers(table, "teleport", path)
     _require_positive(values, path, "teleport", allow_zero=True)
+    values = _with_finite_sum(values, path, "teleport", notes)
     if not (values > 0).any():
         raise DataError(path, "every teleport weight is 0; at least one must be > 0", column="teleport")
     teleport = np.zeros(n)

@@ -39,6 +39,7 @@ import optax
 import pandas as pd
 from tqdm.auto import tqdm
 
+from fitrank import interrupt
 from fitrank.errors import FitrankInputError
 from fitrank.graph import Graph, Pairs
 from fitrank.objective import (Objective, ObjectiveSpec, batch_arrays, full_accuracy, full_objective,
@@ -284,6 +285,7 @@ def optimize(
             tqdm(total=settings.max_steps, desc=label, unit="step", disable=not progress, leave=False) as bar:
         state = _strong(optimizer.init(theta))
         while stop is None:
+            interrupt.checkpoint()
             tick = time.perf_counter()
             arrays = batch_arrays(objective, rng, settings.batch_pairs)
             value, grad = evaluate(theta, state, arrays)

@@ -9,6 +9,7 @@ import sys
 import tomllib
 
 import numpy as np
+import pytest
 
 from fitrank.cli import main
 from fitrank.config import config_keys
@@ -63,6 +64,16 @@ def test_missing_config_file_is_one_line_exit_2(tmp_path, capsys):
     assert main(["fit", str(tmp_path / "nope.toml")]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "nope.toml" in err
+
+
+@pytest.mark.parametrize("argv", [["generate", "out", "--nodes", "many"], ["generate", "out", "--format", "xlsx"],
+                                  ["fit"], ["nonsense"]])
+def test_bad_command_line_arguments_are_one_line_exit_2(argv):
+    command = [sys.executable, "-m", "fitrank.cli", *argv]
+    done = subprocess.run(command, capture_output=True, text=True, timeout=120)
+    assert done.returncode == 2 and done.stdout == ""
+    lines = done.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("fitrank") and "--help" in lines[0], done.stderr
 
 
 def test_bad_data_file_is_one_line_exit_2(tmp_path, capsys):
@@ -122,3 +133,92 @@ def test_unwritable_output_paths_are_refused_before_any_work(tmp_path, capsys):
         err = capsys.readouterr().err.strip()
         assert len(err.splitlines()) == 1 and "blocker is a file" in err, err
     assert blocker.read_text() == "not a folder\n" and sorted(p.name for p in tmp_path.iterdir()) == ["blocker", "run.toml"]
+
+
+def _snapshot(folder):
+    return {path.relative_to(folder): path.read_bytes() for path in sorted(folder.rglob("*")) if path.is_file()}
+
+
+def test_a_run_never_replaces_a_folder_holding_its_inputs_or_other_files(tmp_path, capsys):
+    # a run replaces its whole folder, so a folder with the data, the config or anything not a run's is refused
+    data = tmp_path / "data"
+    data.mkdir()
+    for name in ("edges.csv", "pairs.csv"):
+        (data / name).write_bytes((generated("scale")[2] / name).read_bytes())
+    config = data / "run.toml"
+    config.write_text('[data]\nedges = "edges.csv"\npairs = "pairs.csv"\n[reduction]\nsamples = 16\n'
+                      '[output]\nfolder = "."\nplots = false\n')
+    before = _snapshot(data)
+    assert main(["fit", str(config), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "output.folder" in err and "run.toml" in err, err
+    notes = tmp_path / "notes"
+    notes.mkdir()
+    (notes / "todo.txt").write_text("mine\n")
+    assert main(["fit", str(config), "--quiet", "--out", str(notes)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "todo.txt" in err and "not a run's" in err, err
+    assert _snapshot(data) == before and (notes / "todo.txt").read_text() == "mine\n"
+    # an earlier run folder is a run's, and is replaced
+    run = tmp_path / "run"
+    for _ in range(2):
+        assert main(["fit", str(config), "--quiet", "--out", str(run)]) == 0
+    assert (run / "result.json").is_file()
+
+
+def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten(tmp_path, capsys):
+    config = _config(tmp_path)
+    precious = tmp_path / "precious.csv"
+    precious.write_text("a,b\n1,2\n")
+    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{precious}"']) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "reduction.snapshot_file" in err and "not a .npy file" in err, err
+    assert precious.read_text() == "a,b\n1,2\n"
+    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{tmp_path}"']) == 2
+    assert "is a folder" in capsys.readouterr().err
+    # a missing folder is created, as for the model file; an earlier snapshot file is rewritten
+    snapshots = tmp_path / "new" / "snapshots.npy"
+    for _ in range(2):
+        assert main(["build", str(config), "--set", f'reduction.snapshot_file="{snapshots}"',
+                     "--set", "check.build_points=0"]) == 0
+        assert np.load(snapshots, mmap_mode="r").shape[1] == 24
+
+
+def test_an_empty_or_truncated_model_file_is_rebuilt_not_a_traceback(tmp_path, capsys):
+    config = _config(tmp_path)
+    model = tmp_path / "m.npz"
+    common = ["--quiet", "--set", f'reduction.model="{model}"', "--set", "output.plots=false"]
+    assert main(["fit", str(config), *common]) == 0
+    whole = model.read_bytes()
+    for damaged in (b"", whole[: len(whole) // 2]):
+        model.write_bytes(damaged)
+        assert main(["fit", str(config), *common]) == 0
+        assert model.read_bytes()[:4] == b"PK\x03\x04" and len(model.read_bytes()) > len(damaged)
+    capsys.readouterr()
+
+
+def test_a_ctrl_c_that_had_to_wait_still_stops_the_run_before_it_replaces_the_earlier_one(tmp_path, capsys,
+                                                                                         monkeypatch):
+    import signal
+
+    import fitrank.pipeline
+
+    config = _config(tmp_path)
+    run = tmp_path / "run"
+    assert main(["fit", str(config), "--quiet", "--out", str(run)]) == 0
+    before = _snapshot(run)
+    real_write = fitrank.pipeline.write_run
+    # Ctrl-C arriving while JAX code runs only records the request (raised there, it could crash the
+    # interpreter or be dropped); the write's commit point must raise it
+    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
+    exec("def press_ctrl_c():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
+
+    def interrupted_write(*args, **kwargs):
+        inside_jax["press_ctrl_c"]()
+        return real_write(*args, **kwargs)
+
+    monkeypatch.setattr(fitrank.pipeline, "write_run", interrupted_write)
+    assert main(["fit", str(config), "--quiet", "--out", str(run), "--set", "training.steps=3"]) == 130
+    assert capsys.readouterr().err.strip().splitlines()[-1] == "fitrank fit: interrupted"
+    assert _snapshot(run) == before and sorted(p.name for p in tmp_path.iterdir() if p.name.startswith(".")) == []
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler  # restored after the command

@@ -73,6 +73,13 @@ def test_missing_files_and_bad_toml(config_file, tmp_path):
         load_config(broken)
 
 
+def test_a_byte_order_mark_before_the_toml_is_no_error(config_file):
+    # some editors start UTF-8 files with one; it is not TOML, but it is no mistake of the user's either
+    marked = config_file.with_name("marked.toml")
+    marked.write_bytes(b"\xef\xbb\xbf" + config_file.read_bytes())
+    assert load_config(marked).data == load_config(config_file).data
+
+
 def test_required_keys():
     error = _error({"data": {"pairs": "p.csv"}})
     assert error.key == "data.edges" and "missing" in str(error)

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from fitrank.errors import FitrankInputError
-from fitrank.graph import build_graph
+from fitrank.graph import build_graph, check_teleport
 
 GOOD = {"src": np.array([0, 1, 2]), "dst": np.array([1, 2, 0]), "n": 3}
 
@@ -39,3 +39,10 @@ def test_whole_floats_are_node_indices_and_teleport_is_normalised():
     assert graph.n == 3 and graph.src.dtype == np.int64
     np.testing.assert_array_equal(graph.teleport, [0.25, 0.25, 0.5])
     assert sorted(zip(graph.src, graph.dst)) == [(0, 1), (1, 2), (2, 0)]
+
+
+def test_teleport_weights_keep_their_ratios_even_when_their_sum_would_overflow():
+    np.testing.assert_allclose(check_teleport([1e308, 1e308, 5e307], 3), [0.4, 0.4, 0.2], rtol=1e-15)
+    np.testing.assert_allclose(check_teleport([1e-320, 0.0, 3e-320], 3), [0.25, 0.0, 0.75], rtol=1e-3)  # subnormal
+    with pytest.raises(FitrankInputError, match="all zero"):
+        check_teleport([0.0, 0.0], 2)

@@ -78,6 +78,55 @@ def test_kendall_tau_in_row_blocks_equals_scipy(monkeypatch):
     assert kendall_tau_topk(x, y, 300) == pytest.approx(stats.kendalltau(x[top], y[top]).statistic, abs=1e-12)
 
 
+@given(
+    st.lists(st.integers(0, 6), min_size=2, max_size=40),
+    st.lists(st.integers(-3, 3), min_size=40, max_size=40),
+    st.integers(2, 50),
+    st.sampled_from([0.0, 0.5, 1.5]),
+)
+def test_tau_on_the_pairs_the_reference_orders_by_brute_force(xs, noise, k, resolution):
+    # Reference: Kendall's tau-b (Biometrika 33(3), 1945) computed pair by pair, over only the
+    # pairs whose reference values differ by more than the resolution.
+    x = np.asarray(xs, dtype=float)
+    y = x + 0.1 * np.asarray(noise[: x.size], dtype=float)
+    top = top_k(x, k)
+    agree = untied_x = untied_y = 0
+    for i in range(top.size):
+        for j in range(i + 1, top.size):
+            a, b = x[top[i]] - x[top[j]], y[top[i]] - y[top[j]]
+            if abs(a) <= resolution:
+                continue
+            agree += np.sign(a) * np.sign(b)
+            untied_x += 1
+            untied_y += b != 0
+    got = kendall_tau_topk(x, y, k, reference_resolution=resolution)
+    if untied_x == 0 or untied_y == 0:
+        assert math.isnan(got)
+    else:
+        assert got == pytest.approx(agree / math.sqrt(untied_x * untied_y), abs=1e-12)
+
+
+def test_an_approximation_that_breaks_only_exact_ties_agrees_fully():
+    # symmetric nodes tie exactly in the full solve; rounding-level noise in y orders them at
+    # random, which plain tau-b counts against y and the check must not
+    x = np.repeat([0.3, 0.2, 0.1], 4) / 2.4
+    y = x + 1e-12 * np.random.default_rng(0).normal(size=x.size)
+    assert kendall_tau_topk(x, y, 12) == pytest.approx(math.sqrt(48 / 66))  # 48 ordered pairs of 66, all kept
+    assert kendall_tau_topk(x, y, 12, reference_resolution=0.0) == 1.0
+    tau, _ = metrics.agreement_with_solve(x, y, k=12, x_bound=1e-15)
+    assert tau == 1.0 and metrics.within_tolerance(x, tau, 1e-11, k=12, tau_min=0.999, l1_max=1e-3, x_bound=1e-15)
+    # but an order the full solve does make still counts
+    swapped = y.copy()
+    swapped[[3, 4]] = swapped[[4, 3]]
+    assert metrics.agreement_with_solve(x, swapped, k=12, x_bound=1e-15)[0] < 0.999
+    # a y that ties everything x orders fails, an x that orders nothing leaves it to L1
+    flat = np.full_like(x, x.mean())
+    assert not metrics.within_tolerance(x, metrics.agreement_with_solve(x, flat, k=12)[0], 0.0, k=12,
+                                        tau_min=0.999, l1_max=1e-3)
+    assert metrics.within_tolerance(flat, metrics.agreement_with_solve(flat, x, k=12)[0], 0.0, k=12,
+                                    tau_min=0.999, l1_max=1e-3)
+
+
 def test_normalised_l1_by_hand():
     x = np.array([0.4, 0.3, 0.2, 0.1])
     y = np.array([0.35, 0.3, 0.25, 0.9])

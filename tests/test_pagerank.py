@@ -556,3 +556,15 @@ def test_a_non_finite_transition_is_refused_before_any_solve():
         weighting = make_weighting("features", unchecked)
         with pytest.raises(FitrankInputError, match="features weighting gives a non-finite transition probability"):
             pagerank(unchecked, weighting, weighting.theta0 + 0.1)
+        with pytest.raises(FitrankInputError, match="check that edge's weight and features"):
+            pagerank(unchecked, weighting, weighting.theta0 + 0.1)
+
+
+def test_parameters_too_far_out_for_float64_are_named_as_the_cause_not_the_data():
+    # relation 1 at e^-2000 of relation 0 underflows to 0: a node whose out-edges are all of
+    # relation 1 then has a 0 / 0 walk, though its data are fine (its walk is finite at theta0)
+    graph = build_graph(src=[0, 1, 2], dst=[1, 2, 0], n=3, relation=[0, 1, 0], relation_names=["a", "b"])
+    weighting = make_weighting("scale", graph)
+    with np.errstate(invalid="ignore"), \
+            pytest.raises(FitrankInputError, match=r"largest \|theta\| = 1e\+03.*narrow weighting.bound"):
+        pagerank(graph, weighting, np.array([1000.0, -1000.0]))

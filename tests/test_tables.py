@@ -266,6 +266,19 @@ def test_teleport_table_adds_isolated_nodes_and_zeroes_unlisted_ones(tmp_path):
     assert data.sources == {"edges": str(edges), "nodes": str(nodes), "pairs": str(pairs)}
 
 
+def test_weights_that_sum_beyond_the_float_range_keep_their_ratios(tmp_path):
+    # pair and teleport weights count only relative to their sums, which must stay finite; and an
+    # edge table whose total overflows is fine as long as no node's out-weights do
+    edges = write(tmp_path, "e.csv", "source,target,weight\na,b,1e308\nb,c,1e308\nc,a,1e308\n")
+    nodes = write(tmp_path, "n.csv", "node,teleport\na,1e308\nb,1e308\nc,5e307\n")
+    pairs = write(tmp_path, "p.csv", "preferred,other,weight\na,b,1e308\nb,c,1e308\nc,a,5e307\n")
+    data = load_dataset(edges, pairs, nodes)
+    np.testing.assert_allclose(data.pairs.weight, [1.0, 1.0, 0.5], rtol=1e-15)
+    np.testing.assert_allclose(data.graph.teleport / data.graph.teleport.sum(), [0.4, 0.4, 0.2], rtol=1e-15)
+    assert sum("divided by its largest value" in note for note in data.notes) == 2
+    np.testing.assert_array_equal(data.graph.base, [1e308] * 3)
+
+
 def test_node_table_without_teleport_column_keeps_uniform_teleport(tmp_path):
     edges = write(tmp_path, "e.csv", "source,target\n1,2\n")
     nodes = write(tmp_path, "n.csv", "node\n3\n1\n")
@@ -404,6 +417,25 @@ def test_folder_instead_of_file(tmp_path):
     (tmp_path / "edges.csv").mkdir()
     with pytest.raises(DataError, match="not a regular file"):
         read_edges(tmp_path / "edges.csv")
+
+
+@pytest.mark.parametrize("content, message", [
+    (b"source,target\na,b\n\nb,\xe9t\xe9\n", r"edges\.csv, row 2: this row is not UTF-8 text"),  # Latin-1 bytes
+    (b"source,t\xe9rget\na,b\n", r"edges\.csv: the header is not UTF-8 text"),
+    (bytes(range(256)) * 4, r"edges\.csv: not a text file \(it holds NUL bytes\)"),
+])
+def test_csv_that_is_not_utf8_text_says_so_and_where(tmp_path, content, message):
+    path = tmp_path / "edges.csv"
+    path.write_bytes(content)
+    with pytest.raises(DataError, match=message):
+        read_edges(path)
+
+
+def test_a_parquet_file_named_csv_is_named_as_such(tmp_path):
+    path = tmp_path / "edges.csv"
+    pd.DataFrame({"source": ["a", "b"], "target": ["b", "c"]}).to_parquet(path)
+    with pytest.raises(DataError, match=r"edges\.csv: this is a Parquet file, not CSV text; give it a \.parquet name"):
+        read_edges(path)
 
 
 def test_corrupt_parquet(tmp_path):
