@@ -67,7 +67,10 @@ def refuse_replacing_foreign(folder: str | Path, *, own: frozenset[str], inputs=
     folder = Path(folder).resolve()
     reason = None
     inside = [Path(path) for path in inputs if path and Path(path).resolve().is_relative_to(folder)]
-    if inside:
+    if Path.cwd().resolve().is_relative_to(folder):
+        reason = (f"{folder} holds the working directory, and a run replaces its whole folder (the shell would "
+                  "be left in a deleted folder); choose another output folder")
+    elif inside:
         reason = (f"{folder} holds {inside[0]}, which this run reads or keeps, and a run replaces its whole "
                   "folder; choose another output folder")
     elif folder.is_dir():
@@ -96,8 +99,14 @@ def staged_folder(target: str | Path):
         os.chmod(staging, 0o755)  # mkdtemp makes it private
         if target.exists():
             old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-            os.rename(target, old / "previous")
-            os.rename(staging, target)
+            try:
+                os.rename(target, old / "previous")
+                os.rename(staging, target)
+            except BaseException:
+                if not target.exists() and (old / "previous").exists():
+                    os.rename(old / "previous", target)  # never leave the earlier result hidden
+                shutil.rmtree(old, ignore_errors=True)
+                raise
             shutil.rmtree(old)
         else:
             os.rename(staging, target)

@@ -87,8 +87,8 @@ class GraphSection:
                          choices=("nodes", "uniform"))
     dangling: str = _key("teleport", "where mass leaking from a node without out-weight goes", "str",
                          choices=DANGLING_POLICIES)
-    solver_tol: float = _key(1e-10, "certified L1 error of the full PageRank solves (check, full-space "
-                                    "training; snapshots: reduction.snapshot_tol)", "float", low=0.0,
+    solver_tol: float = _key(1e-10, "certified L1 error of the full PageRank solves (the check's at most "
+                                    "1e-10; full-space training; snapshots: reduction.snapshot_tol)", "float", low=0.0,
                              low_open=True, high=1.0)
 
 

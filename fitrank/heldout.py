@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from fitrank.metrics import agreement_with_solve, within_tolerance
+from fitrank.metrics import REFERENCE_TOL, agreement_with_solve, within_tolerance
 from fitrank.reduced import ReducedModel
 from fitrank.regions import RegionalModel
 from fitrank.snapshots import solve_snapshots
@@ -81,7 +81,8 @@ def held_out_check(model: ReducedModel | RegionalModel, points: int = 4, *, top_
       model: the reduced model (either kind).
       points: how many points (>= 1); each costs one full solve and one residual.
       top_k, tau_min, l1_max: the measures and the tolerances every point must meet.
-      tol: certified L1 error of the full solves.
+      tol: certified L1 error of the full solves, at most :data:`~fitrank.metrics.REFERENCE_TOL`
+        (a looser reference cannot order close pairs).
       executor: where the full solves run (any ``concurrent.futures.Executor``; None: here).
       progress: show a progress bar for the full solves.
 
@@ -91,6 +92,7 @@ def held_out_check(model: ReducedModel | RegionalModel, points: int = 4, *, top_
     if int(points) < 1:
         raise ValueError(f"a held-out check needs at least one point, got {points}")
     start = time.perf_counter()
+    tol = min(tol, REFERENCE_TOL)
     problem = model.problem
     thetas = fresh_points(model, int(points))
     solutions = solve_snapshots(problem, thetas, tol=tol, executor=executor, progress=progress, label="held-out solves")

@@ -57,12 +57,18 @@ def checkpoint() -> None:
 
 @contextlib.contextmanager
 def handling_interrupts():
-    """Install :func:`deliver` for SIGINT (main thread only) for the duration; restore the old handler after."""
+    """Install :func:`deliver` for SIGINT for the duration; restore the old handler after.
+
+    Only in the main thread (the only one Python delivers signals to; other
+    threads leave the main thread's request alone), and not where SIGINT is
+    ignored on purpose (a background job of a shell script starts that way).
+    """
     global _requested
-    _requested = False
-    if threading.current_thread() is not threading.main_thread():
+    if threading.current_thread() is not threading.main_thread() or \
+            signal.getsignal(signal.SIGINT) is signal.SIG_IGN:
         yield
         return
+    _requested = False
     previous = signal.signal(signal.SIGINT, deliver)
     try:
         yield

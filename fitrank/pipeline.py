@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import json
 import time
+import zipfile
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
@@ -27,7 +28,7 @@ from fitrank.atomic import link_or_copy, refuse_replacing_foreign, refuse_unwrit
 from fitrank.config import Config, effective_config, load_config, with_overrides
 from fitrank.errors import ConfigError, FitrankInputError
 from fitrank.graph import SPLITS, Dataset
-from fitrank.metrics import agreement_with_solve, within_tolerance
+from fitrank.metrics import REFERENCE_TOL, agreement_with_solve, within_tolerance
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
 from fitrank.pagerank import PageRankProblem, certified_bound, solve_operator
 from fitrank.reduced import ReducedModel, ReductionSettings
@@ -149,7 +150,16 @@ def refuse_bad_outputs(config: Config, *, run: bool) -> None:
             kept.append(model_path(config))  # a shared model elsewhere in the run folder would go with it
         refuse_replacing_foreign(run_dir, own=RUN_ENTRIES, key="output.folder", inputs=kept)
     if config.reduction.model or not run:
-        refuse_unwritable(model_path(config), folder=False, key="reduction.model")
+        model = model_path(config)
+        refuse_unwritable(model, folder=False, key="reduction.model")
+        if model.is_file() and model.stat().st_size and not _is_model_file(model):
+            raise ConfigError("reduction.model", f"{model} exists and is not a fitrank model file, and the model "
+                              "would overwrite it; choose another path")
+    refuse_bad_snapshot_file(config)
+
+
+def refuse_bad_snapshot_file(config: Config) -> None:
+    """Raise before any solving if ``reduction.snapshot_file`` cannot be written or would overwrite another file."""
     snapshots = config.reduction.snapshot_file
     if snapshots:
         refuse_unwritable(snapshots, folder=False, key="reduction.snapshot_file")
@@ -161,6 +171,15 @@ def refuse_bad_outputs(config: Config, *, run: bool) -> None:
 def _is_npy(path) -> bool:
     with open(path, "rb") as handle:
         return handle.read(6) == b"\x93NUMPY"
+
+
+def _is_model_file(path) -> bool:
+    """An .npz archive with a model's header (readable or not for this data: that is decided on loading)."""
+    try:
+        with zipfile.ZipFile(path) as archive:
+            return "meta.npy" in archive.namelist()
+    except (zipfile.BadZipFile, OSError):
+        return False
 
 
 def _same_build(a: ReductionSettings, b: ReductionSettings) -> bool:
@@ -179,7 +198,7 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
     """
     start = time.perf_counter()
     op = problem.operator(theta)
-    solved = solve_operator(op, tol=config.graph.solver_tol)
+    solved = solve_operator(op, tol=min(config.graph.solver_tol, REFERENCE_TOL))
     x = solved.x
     splits = {name: dataset.pairs.subset(name) for name in SPLITS}
     report = {"full": {name: pair_summary(x, pairs, spec) for name, pairs in splits.items()},
@@ -232,6 +251,8 @@ def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = N
     run_dir = Path(config.output.folder)
     if write:
         refuse_bad_outputs(config, run=True)
+    else:
+        refuse_bad_snapshot_file(config)  # written even when the run folder is not
     timings = {}
     tick = time.perf_counter()
     dataset, problem = prepare(config)

@@ -384,10 +384,12 @@ def _not_csv_text(file: Path) -> tuple[int | None, str] | None:
         data = stream.read()
     if data[:4] == b"PAR1":
         return None, "this is a Parquet file, not CSV text; give it a .parquet name"
+    if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        return None, "this is UTF-16 text; save the file as UTF-8"
     if b"\x00" in data[:65536]:
         return None, "not a text file (it holds NUL bytes); give a CSV or Parquet table"
     row = -1  # the header is row 0; blank lines are not rows (as for Arrow)
-    for line in data.split(b"\n"):
+    for line in data.splitlines():  # \n, \r\n and \r alike
         if not line.strip():
             continue
         row += 1

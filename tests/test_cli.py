@@ -152,6 +152,11 @@ def test_a_run_never_replaces_a_folder_holding_its_inputs_or_other_files(tmp_pat
     assert main(["fit", str(config), "--quiet"]) == 2
     err = capsys.readouterr().err.strip()
     assert len(err.splitlines()) == 1 and "output.folder" in err and "run.toml" in err, err
+    # a shared model or a snapshot file inside the run folder would go with it
+    for key, name in (("reduction.model", "shared.npz"), ("reduction.snapshot_file", "snapshots.npy")):
+        assert main(["fit", str(config), "--quiet", "--out", str(tmp_path / "run"), "--set",
+                     f'{key}="{tmp_path / "run" / name}"']) == 2
+        assert name in capsys.readouterr().err
     notes = tmp_path / "notes"
     notes.mkdir()
     (notes / "todo.txt").write_text("mine\n")
@@ -180,17 +185,49 @@ def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten
         assert np.load(snapshots, mmap_mode="r").shape[1] == 24
 
 
-def test_an_empty_or_truncated_model_file_is_rebuilt_not_a_traceback(tmp_path, capsys):
+def test_a_model_path_never_overwrites_what_is_not_a_model_and_an_empty_file_is_rebuilt(tmp_path, capsys):
     config = _config(tmp_path)
     model = tmp_path / "m.npz"
     common = ["--quiet", "--set", f'reduction.model="{model}"', "--set", "output.plots=false"]
     assert main(["fit", str(config), *common]) == 0
     whole = model.read_bytes()
-    for damaged in (b"", whole[: len(whole) // 2]):
-        model.write_bytes(damaged)
-        assert main(["fit", str(config), *common]) == 0
-        assert model.read_bytes()[:4] == b"PK\x03\x04" and len(model.read_bytes()) > len(damaged)
+    # cut short it is no model any more, and it might be anything: refused, left as it is
+    model.write_bytes(whole[: len(whole) // 2])
+    assert main(["fit", str(config), *common]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "reduction.model" in err and "not a fitrank model file" in err, err
+    assert model.read_bytes() == whole[: len(whole) // 2]
+    edges = generated("scale")[2] / "edges.csv"
+    before = edges.read_bytes()
+    assert main(["build", str(config), "--set", f'reduction.model="{edges}"']) == 2
+    assert "not a fitrank model file" in capsys.readouterr().err and edges.read_bytes() == before
+    model.write_bytes(b"")  # nothing to lose: rebuilt, not a traceback
+    assert main(["fit", str(config), *common]) == 0
+    assert model.read_bytes()[:4] == b"PK\x03\x04"
     capsys.readouterr()
+
+
+def test_the_snapshot_file_is_checked_even_when_no_run_folder_is_written(tmp_path):
+    from fitrank.errors import ConfigError
+    from fitrank.pipeline import fit
+
+    notes = tmp_path / "notes.csv"
+    notes.write_text("mine\n")
+    with pytest.raises(ConfigError, match="reduction.snapshot_file.*not a .npy file"):
+        fit(_config(tmp_path), overrides=[f'reduction.snapshot_file="{notes}"'], write=False, progress=False,
+            log=lambda message: None)
+    assert notes.read_text() == "mine\n"
+
+
+def test_a_run_folder_holding_the_working_directory_is_refused(tmp_path, capsys, monkeypatch):
+    config = _config(tmp_path)
+    here = tmp_path / "here"
+    here.mkdir()
+    monkeypatch.chdir(here)
+    assert main(["fit", str(config), "--quiet", "--out", "."]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "working directory" in err, err
+    assert here.is_dir() and list(here.iterdir()) == []
 
 
 def test_a_ctrl_c_that_had_to_wait_still_stops_the_run_before_it_replaces_the_earlier_one(tmp_path, capsys,
@@ -218,3 +255,21 @@ def test_a_ctrl_c_that_had_to_wait_still_stops_the_run_before_it_replaces_the_ea
     assert capsys.readouterr().err.strip().splitlines()[-1] == "fitrank fit: interrupted"
     assert _snapshot(run) == before and sorted(p.name for p in tmp_path.iterdir() if p.name.startswith(".")) == []
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler  # restored after the command
+
+
+def test_a_command_that_ends_with_a_ctrl_c_still_waiting_reports_it(tmp_path, capsys, monkeypatch):
+    import signal
+
+    import fitrank.config
+
+    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
+    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
+    real = fitrank.config.effective_config
+
+    def pressed(*args, **kwargs):
+        inside_jax["press"]()  # waits: no checkpoint before the command returns
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(fitrank.config, "effective_config", pressed)
+    assert main(["settings", str(_config(tmp_path))]) == 130
+    assert capsys.readouterr().err.strip() == "fitrank settings: interrupted"

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -76,3 +77,14 @@ def test_held_out_check_needs_a_point():
     with pytest.raises(ValueError, match="at least one point"):
         held_out_check(_model("scale"), 0, progress=False)
 
+
+
+def test_a_loose_tolerance_cannot_loosen_the_check_and_nan_is_never_the_worst():
+    # the reference solve is never looser than REFERENCE_TOL: else close pairs would go unchecked
+    model = _model("scale", rank=2)
+    loose = held_out_check(model, 2, tol=1e-2, progress=False)
+    tight = held_out_check(model, 2, tol=1e-10, progress=False)
+    np.testing.assert_array_equal(loose.tau, tight.tau)
+    assert not loose.passed
+    summary = replace(tight, tau=np.array([np.nan, 0.5])).summary()
+    assert summary["tau_topk_min"] == 0.5

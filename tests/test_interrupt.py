@@ -58,3 +58,82 @@ def test_the_previous_handler_comes_back_and_checkpoints_are_free_outside():
         assert signal.getsignal(signal.SIGINT) is interrupt.deliver
     assert signal.getsignal(signal.SIGINT) is before
     interrupt.checkpoint()
+
+
+def test_another_thread_neither_installs_a_handler_nor_forgets_the_main_threads_request():
+    import threading
+
+    with interrupt.handling_interrupts():
+        _run_inside("jax._src.somewhere")  # a request waits
+        worker = threading.Thread(target=lambda: interrupt.handling_interrupts().__enter__())
+        worker.start()
+        worker.join()
+        with pytest.raises(KeyboardInterrupt):
+            interrupt.checkpoint()
+
+
+def test_an_ignored_sigint_stays_ignored():
+    previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        with interrupt.handling_interrupts():
+            assert signal.getsignal(signal.SIGINT) is signal.SIG_IGN
+        assert signal.getsignal(signal.SIGINT) is signal.SIG_IGN
+    finally:
+        signal.signal(signal.SIGINT, previous)
+
+
+def _waiting_request():
+    """Inside handling_interrupts: a Ctrl-C that arrived inside JAX and waits for a checkpoint."""
+    _run_inside("jax._src.somewhere")
+
+
+def test_a_waiting_request_stops_the_snapshot_solves_and_every_commit(tmp_path):
+    from fitrank.atomic import staged_file, staged_folder
+    from fitrank.pagerank import PageRankProblem
+    from fitrank.snapshots import solve_snapshots
+    from fitrank.weightings import make_weighting
+
+    from tests._datasets import generated
+
+    graph = generated("scale")[0].graph
+    problem = PageRankProblem(graph, make_weighting("scale", graph))
+    with interrupt.handling_interrupts():
+        _waiting_request()
+        with pytest.raises(KeyboardInterrupt):
+            solve_snapshots(problem, problem.weighting.sample(4), chunk_size=1, progress=False)
+    target = tmp_path / "result.txt"
+    target.write_text("earlier\n")
+    with interrupt.handling_interrupts():
+        _waiting_request()
+        with pytest.raises(KeyboardInterrupt), staged_file(target) as temp:
+            temp.write_text("new\n")
+    folder = tmp_path / "run"
+    folder.mkdir()
+    (folder / "a").write_text("earlier\n")
+    with interrupt.handling_interrupts():
+        _waiting_request()
+        with pytest.raises(KeyboardInterrupt), staged_folder(folder) as staging:
+            (staging / "b").write_text("new\n")
+    assert target.read_text() == "earlier\n" and [p.name for p in folder.iterdir()] == ["a"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["result.txt", "run"]  # no staging left behind
+
+
+def test_a_failed_swap_puts_the_earlier_folder_back(tmp_path, monkeypatch):
+    import os
+
+    from fitrank import atomic
+
+    folder = tmp_path / "run"
+    folder.mkdir()
+    (folder / "a").write_text("earlier\n")
+    real_rename = os.rename
+
+    def rename(source, destination):
+        if ".tmp-" in str(source):  # the new folder's move into place: Ctrl-C lands just before it
+            raise KeyboardInterrupt
+        real_rename(source, destination)
+
+    monkeypatch.setattr(atomic.os, "rename", rename)
+    with pytest.raises(KeyboardInterrupt), atomic.staged_folder(folder) as staging:
+        (staging / "b").write_text("new\n")
+    assert [p.name for p in folder.iterdir()] == ["a"] and sorted(p.name for p in tmp_path.iterdir()) == ["run"]

@@ -423,6 +423,8 @@ def test_folder_instead_of_file(tmp_path):
     (b"source,target\na,b\n\nb,\xe9t\xe9\n", r"edges\.csv, row 2: this row is not UTF-8 text"),  # Latin-1 bytes
     (b"source,t\xe9rget\na,b\n", r"edges\.csv: the header is not UTF-8 text"),
     (bytes(range(256)) * 4, r"edges\.csv: not a text file \(it holds NUL bytes\)"),
+    (b"source,target\ra,b\rb,\xe9\r", r"edges\.csv, row 2: this row is not UTF-8 text"),  # old line ends
+    ("source,target\na,b\n".encode("utf-16"), r"edges\.csv: this is UTF-16 text; save the file as UTF-8"),
 ])
 def test_csv_that_is_not_utf8_text_says_so_and_where(tmp_path, content, message):
     path = tmp_path / "edges.csv"

@@ -233,3 +233,18 @@ def test_plots_write_readable_pngs(tmp_path, problem, objective):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["frame.png", "loss.png", "rounds.png", "sub", "w.png"]
     with pytest.raises(ValueError, match="one value per name"):
         plot_weights(["a", "b"], np.zeros(3), np.zeros(2), tmp_path / "bad.png")
+
+
+def test_a_ctrl_c_waiting_for_a_checkpoint_stops_training_at_the_next_step(problem, objective):
+    import signal
+
+    from fitrank import interrupt
+
+    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
+    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
+    steps = []
+    with interrupt.handling_interrupts(), pytest.raises(KeyboardInterrupt):
+        optimize(objective, problem.weighting.theta0, LoopSettings(optimizer="sgd", learning_rate=0.5),
+                 callback=lambda row, theta: steps.append(row) or (inside_jax["press"]() if len(steps) == 2 else None),
+                 progress=False)
+    assert len(steps) == 2
