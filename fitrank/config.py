@@ -98,7 +98,8 @@ class WeightingSection:
                               "(per-relation scale), features (log-linear in edge features)", "str", choices=KINDS)
     bound: float | None = _key(None, "half-width of the parameter box sampled offline (scale, features), at most "
                                      "50 (relation weights e^100 apart, far beyond any useful weighting); "
-                                     "\"auto\" = the weighting's own", "float?", low=0.0, low_open=True, high=50.0)
+                                     "\"auto\" = the weighting's own (1.5 for scale, 0.7 / sqrt(features) for "
+                                     "features)", "float?", low=0.0, low_open=True, high=50.0)
 
 
 @dataclass(frozen=True)

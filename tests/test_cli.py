@@ -89,6 +89,7 @@ def test_bad_data_file_is_one_line_exit_2(tmp_path, capsys):
     assert not (tmp_path / "out").exists()
 
 
+@pytest.mark.slow
 def test_fit_keeps_compiled_programs_on_disk_and_reuses_them(tmp_path):
     # Two fits in fresh processes with one compile cache: the first writes programs there,
     # the second runs from them and gives the same result.json numbers.
@@ -139,6 +140,7 @@ def _snapshot(folder):
     return {path.relative_to(folder): path.read_bytes() for path in sorted(folder.rglob("*")) if path.is_file()}
 
 
+@pytest.mark.slow
 def test_a_run_never_replaces_a_folder_holding_its_inputs_or_other_files(tmp_path, capsys):
     # a run replaces its whole folder, so a folder with the data, the config or anything not a run's is refused
     data = tmp_path / "data"
@@ -185,6 +187,7 @@ def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten
         assert np.load(snapshots, mmap_mode="r").shape[1] == 24
 
 
+@pytest.mark.slow
 def test_a_model_path_never_overwrites_what_is_not_a_model_and_an_empty_file_is_rebuilt(tmp_path, capsys):
     config = _config(tmp_path)
     model = tmp_path / "m.npz"
@@ -230,6 +233,7 @@ def test_a_run_folder_holding_the_working_directory_is_refused(tmp_path, capsys,
     assert here.is_dir() and list(here.iterdir()) == []
 
 
+@pytest.mark.slow
 def test_a_ctrl_c_that_had_to_wait_still_stops_the_run_before_it_replaces_the_earlier_one(tmp_path, capsys,
                                                                                          monkeypatch):
     import signal

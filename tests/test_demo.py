@@ -149,6 +149,7 @@ def test_example_configs_cover_each_weighting_and_method():
 # --------------------------------------------------------------------------- end to end
 
 
+@pytest.mark.slow
 def test_demo_config_end_to_end(tmp_path, capsys):
     from fitrank.cli import main
     from fitrank.config import load_config

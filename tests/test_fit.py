@@ -17,6 +17,8 @@ from fitrank.pagerank import PageRankProblem
 
 from tests._datasets import generated
 
+pytestmark = pytest.mark.slow  # every test here runs whole fits
+
 # Fast, deterministic settings shared by these tests (the defaults are for real data).
 FAST = ["reduction.samples=48", "training.steps=60", "output.plots=false"]
 

@@ -111,6 +111,7 @@ def test_row_choice_stops_when_rank_is_exhausted():
     assert select_rows(low_rank, 10).rows.size == 5
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind,method", CASES)
 def test_reduced_score_gradients_match_finite_differences(kind, method):
     model = _model(kind, method)
@@ -242,6 +243,7 @@ def test_galerkin_refused_for_non_affine_weighting():
         build_reduced_model(_problem("scale"), ReductionSettings(method="galerkin", samples=4), progress=False)
 
 
+@pytest.mark.slow
 def test_snapshots_on_local_processes_and_on_a_dask_executor():
     # the offline stage takes any concurrent.futures.Executor: local processes and Dask's alike
     distributed = pytest.importorskip("distributed")
@@ -391,6 +393,7 @@ def test_scorer_differences_equal_differences_of_scores():
     np.testing.assert_allclose(got, 3.0 * (x[first] - x[second]), rtol=1e-12, atol=1e-15)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind,method", [("mixture", "galerkin"), ("features", "interpolation")])
 def test_a_float32_scorer_gives_the_float64_values_within_float32_rounding(kind, method):
     model = _model(kind, method)

@@ -45,6 +45,7 @@ def _fresh(kind: str, count: int = 12):
     return thetas, [problem.solve(theta, tol=1e-12).x for theta in thetas]
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind,method,samples,regions", CASES)
 def test_regional_model_matches_full_solves_at_fresh_points(kind, method, samples, regions):
     model = _model(kind, method, samples, regions)
@@ -65,6 +66,7 @@ def test_regional_model_matches_full_solves_at_fresh_points(kind, method, sample
         np.testing.assert_array_equal(y, part.vector(theta))
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind,method,samples,regions", CASES)
 def test_regional_scorer_picks_the_region_inside_jit_and_its_gradient_matches_finite_differences(
         kind, method, samples, regions):
@@ -100,6 +102,7 @@ def test_regional_scorer_picks_the_region_inside_jit_and_its_gradient_matches_fi
                                2.0 * (x[first] - x[second]), rtol=1e-12, atol=1e-15)
 
 
+@pytest.mark.slow
 def test_a_float32_regional_scorer_gives_the_float64_values_within_float32_rounding():
     model = _model("features", "interpolation", 128, 4)
     nodes = np.arange(0, model.problem.graph.n, 37)

@@ -43,6 +43,7 @@ def _centred(kind, theta):
     return theta - theta.mean() if kind in ("scale", "mixture") else theta
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", sorted(TRUTHS))
 def test_reduced_training_recovers_a_known_theta(kind):
     # Ground truth recovery: pairs are labelled by exact PageRank at a known theta (5% flipped).
@@ -180,6 +181,7 @@ def test_same_seed_same_numbers(problem, objective):
     assert np.array_equal(deterministic[0].path, deterministic[1].path)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("optimizer", ["lbfgs", "adam"])
 def test_full_space_training_matches_reduced_training_on_an_exact_scorer(problem, optimizer):
     # The dense scorer is exact, so both trainers minimise the same J: one through JAX

@@ -243,6 +243,7 @@ def test_mixture_samples_are_centred_log_weights_covering_the_simplex():
 # ----------------------------------------------------------------------------- the walk itself
 
 
+@pytest.mark.slow
 @examples(0.8)
 @given(seed=seeds, shape=shapes, kind=st.sampled_from(KINDS), spread=st.sampled_from([0.5, 3.0, 30.0]))
 def test_transition_columns_sum_to_one_minus_leak(seed, shape, kind, spread):
@@ -260,6 +261,7 @@ def test_transition_columns_sum_to_one_minus_leak(seed, shape, kind, spread):
     np.testing.assert_allclose(leak[dangling], 1.0, atol=1e-15)
 
 
+@pytest.mark.slow
 @examples(0.5)
 @given(seed=seeds, shape=shapes, kind=st.sampled_from(KINDS), spread=st.sampled_from([0.5, 3.0, 30.0]))
 def test_numpy_evaluation_is_the_jax_one(seed, shape, kind, spread):
@@ -280,6 +282,7 @@ def test_numpy_evaluation_is_the_jax_one(seed, shape, kind, spread):
                                np.asarray(weighting.transition(theta, local)), rtol=1e-13, atol=1e-300)
 
 
+@pytest.mark.slow
 @examples(0.5)
 @given(seed=seeds, shape=shapes, kind=st.sampled_from(KINDS), fraction=st.sampled_from([0.0, 0.3, 1.0]))
 def test_local_tables_give_the_same_transition_as_the_full_tables(seed, shape, kind, fraction):
@@ -292,6 +295,7 @@ def test_local_tables_give_the_same_transition_as_the_full_tables(seed, shape, k
     np.testing.assert_allclose(np.asarray(local), transition_of(weighting, theta)[edge_ids], rtol=1e-13, atol=0)
 
 
+@pytest.mark.slow
 def test_local_tables_of_the_in_edges_of_one_row():
     # The unit a reduced model asks for: all in-edges of one node; here the busiest row, a
     # middling one and an empty selection (each new size costs a JAX compilation).
