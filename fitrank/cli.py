@@ -12,7 +12,7 @@ import os
 import sys
 
 from fitrank.errors import FitrankInputError
-from fitrank.interrupt import checkpoint, handling_interrupts
+from fitrank import interrupt
 
 
 class _Parser(argparse.ArgumentParser):
@@ -199,15 +199,18 @@ def _cmd_generate(args: argparse.Namespace) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
-    with handling_interrupts():
+    with interrupt.handling_interrupts():
         try:
             status = int(args.func(args) or 0)
-            checkpoint()  # a Ctrl-C that came where it had to wait still ends the command as interrupted
+            interrupt.checkpoint()  # a Ctrl-C that came where it had to wait still ends the command as interrupted
             return status
         except FitrankInputError as err:
             print(f"fitrank {args.command}: error: {err}", file=sys.stderr)
             return 2
-        except KeyboardInterrupt:
+        except (KeyboardInterrupt, Exception) as err:
+            # a second Ctrl-C raised inside compiled JAX code comes back as JAX's own error
+            if not (isinstance(err, KeyboardInterrupt) or interrupt.requested()):
+                raise
             print(f"fitrank {args.command}: interrupted", file=sys.stderr)
             return 130
 

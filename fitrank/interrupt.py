@@ -49,6 +49,11 @@ def _must_wait(frame) -> bool:
     return False
 
 
+def requested() -> bool:
+    """Whether a Ctrl-C has arrived (under :func:`handling_interrupts`), raised yet or not."""
+    return _requested
+
+
 def checkpoint() -> None:
     """Raise KeyboardInterrupt if a Ctrl-C arrived and was deferred; cheap enough to call every step."""
     if _requested:

@@ -277,3 +277,24 @@ def test_a_command_that_ends_with_a_ctrl_c_still_waiting_reports_it(tmp_path, ca
     monkeypatch.setattr(fitrank.config, "effective_config", pressed)
     assert main(["settings", str(_config(tmp_path))]) == 130
     assert capsys.readouterr().err.strip() == "fitrank settings: interrupted"
+
+
+def test_an_error_after_a_ctrl_c_is_reported_as_the_interruption(tmp_path, capsys, monkeypatch):
+    # a second Ctrl-C inside compiled JAX code reaches the command as JAX's own error, not KeyboardInterrupt
+    import signal
+
+    import fitrank.config
+
+    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
+    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
+
+    def pressed_then_failed(*args, **kwargs):
+        inside_jax["press"]()
+        raise RuntimeError("what JAX raises for an exception in a host callback")
+
+    monkeypatch.setattr(fitrank.config, "effective_config", pressed_then_failed)
+    assert main(["settings", str(_config(tmp_path))]) == 130
+    assert capsys.readouterr().err.strip() == "fitrank settings: interrupted"
+    monkeypatch.setattr(fitrank.config, "effective_config", lambda *a, **k: 1 / 0)
+    with pytest.raises(ZeroDivisionError):  # without a Ctrl-C an error stays an error
+        main(["settings", str(_config(tmp_path))])
