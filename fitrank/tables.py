@@ -834,8 +834,12 @@ def _merge_duplicate_edges(
     merged_features = features[first]
     groups = sizes > 1
     if features.shape[1] and groups.any():
-        weighted = np.add.reduceat(features * base[:, None], first, axis=0)
-        merged_features[groups] = weighted[groups] / summed[groups, None]
+        # each row's share of its group's weight, formed without products near the float range (weights
+        # up to 1.8e308 are valid): the mean of finite features then stays finite
+        relative = base / np.repeat(np.maximum.reduceat(base, first), sizes)
+        share = relative / np.repeat(np.add.reduceat(relative, first), sizes)
+        weighted = np.add.reduceat(features * share[:, None], first, axis=0)
+        merged_features[groups] = weighted[groups]
     return src[first], dst[first], relation[first], summed, merged_features
 
 

@@ -229,6 +229,15 @@ def test_duplicate_edges_are_summed_with_weighted_mean_features(tmp_path):
     assert any("merged" in note and note.endswith(": 1") for note in notes)
 
 
+def test_merged_features_of_huge_weights_stay_finite(tmp_path):
+    # weights near the float range are valid; their products with the features are not needed
+    edges = write(tmp_path, "e.csv", "source,target,weight,age\na,b,5e307,2\na,b,5e307,4\nb,a,1,1\n")
+    with np.errstate(all="raise"):
+        graph = read_edges(edges)
+    np.testing.assert_array_equal(graph.base, [1.0, 1e308])
+    np.testing.assert_allclose(graph.features[:, 0], [1.0, 3.0], rtol=1e-15)
+
+
 def test_self_loops_are_kept_and_counted(tmp_path):
     notes: list[str] = []
     graph = read_edges(write(tmp_path, "e.csv", "source,target\na,a\na,b\nb,b\n"), notes=notes)
