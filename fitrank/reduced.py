@@ -255,10 +255,11 @@ def readout_dtype(dtype) -> np.dtype:
     run in float32. That halves the bytes it reads (a regional model's
     readouts are its largest arrays, and going from region to region they
     come from memory, not cache) and XLA's float32 product runs 1.5-2x as fast
-    as its float64 one: (50, 2,000) in 40-48 against 59-81 us. A 12-region
-    model called at a new region each time took 0.287 against 0.326 ms in all,
-    and the scores of all 200k nodes 1.83 against 5.42 ms at k = 50 (measured
-    side by side on the 2-core development machine). The values then carry
+    as its float64 one: (50, 2,000) in 40-48 against 59-81 us. The feature
+    weighting's 12-region model called at a new region each time took 0.287
+    against 0.326 ms in all, and the mixture's scores of all 200k nodes 1.83
+    against 5.42 ms at k = 50 (measured side by side on the 2-core
+    development machine). The values then carry
     relative errors of about 1e-7 (float32's epsilon times the largest terms
     of the sum), a thousandth or less of a reduced model's own error at
     top-100 Kendall tau 0.999. Training keeps float64: a line search compares
