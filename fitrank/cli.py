@@ -100,9 +100,9 @@ def _cmd_build(args: argparse.Namespace) -> int:
         model = build_model(problem, reduction_settings(config), executor=pool)
         if check.build_points:
             held_out = held_out_check(model, check.build_points, top_k=check.top_k, tau_min=check.tau_min,
-                                      l1_max=check.l1_max, tol=config.graph.solver_tol, executor=pool)
+                                      l1_max=check.l1_max, tol=config.graph.solver_tol, executor=pool).summary()
             # saved with the model, so whoever reuses it later can see how far it was trusted
-            model = replace(model, info={**model.info, "held_out": held_out.summary()})
+            model = replace(model, info={**model.info, "held_out": held_out})
     finally:
         if pool is not None:
             pool.shutdown()
@@ -119,7 +119,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
         print(f"rows chosen: {info['rows']}, edges touched: {info['edges_touched']} "
               f"({info['edges_touched_fraction']:.1%} of {problem.graph.num_edges})")
     if held_out is not None:
-        print(_held_out_line(held_out.summary(), check))
+        print(_held_out_line(held_out, check))
     print(f"offline time: {time.perf_counter() - start:.1f} s "
           f"(snapshots {info['timings']['snapshots_s']:.1f} s, basis {info['timings']['basis_s']:.1f} s, "
           f"assembly {info['timings']['assemble_s']:.1f} s)")

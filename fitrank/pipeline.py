@@ -141,39 +141,42 @@ def refuse_bad_outputs(config: Config, *, run: bool) -> None:
     Raises:
       ConfigError: naming the key of the output path at fault.
     """
+    model = model_path(config)
     if run:
         run_dir = Path(config.output.folder)
         refuse_unwritable(run_dir, folder=True, key="output.folder")
         kept = [config.source, config.data.edges, config.data.pairs, config.data.nodes,
                 config.reduction.snapshot_file]
-        if model_path(config).resolve() != (run_dir / MODEL_FILE).resolve():
-            kept.append(model_path(config))  # a shared model elsewhere in the run folder would go with it
+        if model.resolve() != (run_dir / MODEL_FILE).resolve():
+            kept.append(model)  # a shared model elsewhere in the run folder would go with it
         refuse_replacing_foreign(run_dir, own=RUN_ENTRIES, key="output.folder", inputs=kept)
     if config.reduction.model or not run:
-        model = model_path(config)
-        refuse_unwritable(model, folder=False, key="reduction.model")
-        if model.is_file() and model.stat().st_size and not _is_model_file(model):
-            raise ConfigError("reduction.model", f"{model} exists and is not a fitrank model file, and the model "
-                              "would overwrite it; choose another path")
+        # an empty file holds nothing to lose
+        _refuse_overwriting(model, "reduction.model", lambda path: not path.stat().st_size or _is_model_file(path),
+                            "a fitrank model file")
     refuse_bad_snapshot_file(config)
 
 
 def refuse_bad_snapshot_file(config: Config) -> None:
     """Raise before any solving if ``reduction.snapshot_file`` cannot be written or would overwrite another file."""
-    snapshots = config.reduction.snapshot_file
-    if snapshots:
-        refuse_unwritable(snapshots, folder=False, key="reduction.snapshot_file")
-        if Path(snapshots).is_file() and not _is_npy(snapshots):
-            raise ConfigError("reduction.snapshot_file", f"{snapshots} exists and is not a .npy file, and the "
-                              "snapshot matrix would overwrite it; choose another path")
+    if config.reduction.snapshot_file:
+        _refuse_overwriting(Path(config.reduction.snapshot_file), "reduction.snapshot_file", _is_npy, "a .npy file")
 
 
-def _is_npy(path) -> bool:
+def _refuse_overwriting(path: Path, key: str, is_ours, what: str) -> None:
+    """Raise unless ``path`` can be written and is not an existing file that ``is_ours`` does not recognise."""
+    refuse_unwritable(path, folder=False, key=key)
+    if path.is_file() and not is_ours(path):
+        raise ConfigError(key, f"{path} exists and is not {what}, and fitrank would overwrite it; choose "
+                               "another path")
+
+
+def _is_npy(path: Path) -> bool:
     with open(path, "rb") as handle:
         return handle.read(6) == b"\x93NUMPY"
 
 
-def _is_model_file(path) -> bool:
+def _is_model_file(path: Path) -> bool:
     """An .npz archive with a model's header (readable or not for this data: that is decided on loading)."""
     try:
         with zipfile.ZipFile(path) as archive:
