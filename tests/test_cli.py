@@ -14,6 +14,7 @@ import pytest
 from fitrank.cli import main
 from fitrank.config import config_keys
 
+from tests._ctrl_c import press_ctrl_c_inside
 from tests._datasets import generated
 
 
@@ -24,6 +25,13 @@ def _config(tmp_path, kind="scale", extra=""):
                     f'[weighting]\nkind = "{kind}"\n[reduction]\nsamples = 24\n'
                     f'[output]\nfolder = "{tmp_path / "out"}"\n{extra}')
     return path
+
+
+def _one_line_error(capsys, *words: str) -> str:
+    """The stderr of the last command, after checking it is one line holding every one of ``words``."""
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and all(word in err for word in words), err
+    return err
 
 
 def test_build_saves_the_model_and_reports_it(tmp_path, capsys):
@@ -62,8 +70,7 @@ def test_settings_prints_every_key_and_round_trips(tmp_path, capsys):
 
 def test_missing_config_file_is_one_line_exit_2(tmp_path, capsys):
     assert main(["fit", str(tmp_path / "nope.toml")]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "nope.toml" in err
+    _one_line_error(capsys, "nope.toml")
 
 
 @pytest.mark.parametrize("argv", [["generate", "out", "--nodes", "many"], ["generate", "out", "--format", "xlsx"],
@@ -84,8 +91,7 @@ def test_bad_data_file_is_one_line_exit_2(tmp_path, capsys):
     config = tmp_path / "bad.toml"
     config.write_text(f'[data]\nedges = "{bad}"\npairs = "{pairs}"\n[output]\nfolder = "{tmp_path / "out"}"\n')
     assert main(["fit", str(config), "--quiet"]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "edges.csv" in err and "row 2" in err
+    _one_line_error(capsys, "edges.csv", "row 2")
     assert not (tmp_path / "out").exists()
 
 
@@ -117,22 +123,18 @@ def test_unwritable_output_paths_are_refused_before_any_work(tmp_path, capsys):
     blocker = tmp_path / "blocker"
     blocker.write_text("not a folder\n")
     assert main(["build", str(config), "--set", f'reduction.model="{blocker / "m.npz"}"']) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "reduction.model" in err and "blocker is a file" in err, err
+    _one_line_error(capsys, "reduction.model", "blocker is a file")
     assert main(["fit", str(config), "--quiet", "--out", str(blocker / "run")]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "output.folder" in err and "blocker is a file" in err, err
+    _one_line_error(capsys, "output.folder", "blocker is a file")
     assert main(["build", str(config), "--set", f'reduction.model="{tmp_path}"']) == 2
     assert "is a folder" in capsys.readouterr().err
     # fit with a shared model file under a file, and generate into a folder under a file
     assert main(["fit", str(config), "--quiet", "--out", str(tmp_path / "run"),
                  "--set", f'reduction.model="{blocker / "m.npz"}"']) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "reduction.model" in err and "blocker is a file" in err, err
+    _one_line_error(capsys, "reduction.model", "blocker is a file")
     for out in (blocker, blocker / "data"):
         assert main(["generate", str(out), "--nodes", "50"]) == 2
-        err = capsys.readouterr().err.strip()
-        assert len(err.splitlines()) == 1 and "blocker is a file" in err, err
+        _one_line_error(capsys, "blocker is a file")
     assert blocker.read_text() == "not a folder\n" and sorted(p.name for p in tmp_path.iterdir()) == ["blocker", "run.toml"]
 
 
@@ -152,8 +154,7 @@ def test_a_run_never_replaces_a_folder_holding_its_inputs_or_other_files(tmp_pat
                       '[output]\nfolder = "."\nplots = false\n')
     before = _snapshot(data)
     assert main(["fit", str(config), "--quiet"]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "output.folder" in err and "run.toml" in err, err
+    _one_line_error(capsys, "output.folder", "run.toml")
     # a shared model or a snapshot file inside the run folder would go with it
     for key, name in (("reduction.model", "shared.npz"), ("reduction.snapshot_file", "snapshots.npy")):
         assert main(["fit", str(config), "--quiet", "--out", str(tmp_path / "run"), "--set",
@@ -163,8 +164,7 @@ def test_a_run_never_replaces_a_folder_holding_its_inputs_or_other_files(tmp_pat
     notes.mkdir()
     (notes / "todo.txt").write_text("mine\n")
     assert main(["fit", str(config), "--quiet", "--out", str(notes)]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "todo.txt" in err and "not a run's" in err, err
+    _one_line_error(capsys, "todo.txt", "not a run's")
     assert _snapshot(data) == before and (notes / "todo.txt").read_text() == "mine\n"
     # (an earlier run folder holds only a run's files and is replaced: test_fit's reuse tests write one twice)
 
@@ -174,8 +174,7 @@ def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten
     precious = tmp_path / "precious.csv"
     precious.write_text("a,b\n1,2\n")
     assert main(["build", str(config), "--set", f'reduction.snapshot_file="{precious}"']) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "reduction.snapshot_file" in err and "not a .npy file" in err, err
+    _one_line_error(capsys, "reduction.snapshot_file", "not a .npy file")
     assert precious.read_text() == "a,b\n1,2\n"
     assert main(["build", str(config), "--set", f'reduction.snapshot_file="{tmp_path}"']) == 2
     assert "is a folder" in capsys.readouterr().err
@@ -197,8 +196,7 @@ def test_a_model_path_never_overwrites_what_is_not_a_model_and_an_empty_file_is_
     # cut short it is no model any more, and it might be anything: refused, left as it is
     model.write_bytes(whole[: len(whole) // 2])
     assert main(["fit", str(config), *common]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "reduction.model" in err and "not a fitrank model file" in err, err
+    _one_line_error(capsys, "reduction.model", "not a fitrank model file")
     assert model.read_bytes() == whole[: len(whole) // 2]
     edges = generated("scale")[2] / "edges.csv"
     before = edges.read_bytes()
@@ -228,8 +226,7 @@ def test_a_run_folder_holding_the_working_directory_is_refused(tmp_path, capsys,
     here.mkdir()
     monkeypatch.chdir(here)
     assert main(["fit", str(config), "--quiet", "--out", "."]) == 2
-    err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "working directory" in err, err
+    _one_line_error(capsys, "working directory")
     assert here.is_dir() and list(here.iterdir()) == []
 
 
@@ -247,11 +244,8 @@ def test_a_ctrl_c_that_had_to_wait_still_stops_the_run_before_it_replaces_the_ea
     real_write = fitrank.pipeline.write_run
     # Ctrl-C arriving while JAX code runs only records the request (raised there, it could crash the
     # interpreter or be dropped); the write's commit point must raise it
-    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
-    exec("def press_ctrl_c():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
-
     def interrupted_write(*args, **kwargs):
-        inside_jax["press_ctrl_c"]()
+        press_ctrl_c_inside()
         return real_write(*args, **kwargs)
 
     monkeypatch.setattr(fitrank.pipeline, "write_run", interrupted_write)
@@ -262,16 +256,12 @@ def test_a_ctrl_c_that_had_to_wait_still_stops_the_run_before_it_replaces_the_ea
 
 
 def test_a_command_that_ends_with_a_ctrl_c_still_waiting_reports_it(tmp_path, capsys, monkeypatch):
-    import signal
-
     import fitrank.config
 
-    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
-    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
     real = fitrank.config.effective_config
 
     def pressed(*args, **kwargs):
-        inside_jax["press"]()  # waits: no checkpoint before the command returns
+        press_ctrl_c_inside()  # waits: no checkpoint before the command returns
         return real(*args, **kwargs)
 
     monkeypatch.setattr(fitrank.config, "effective_config", pressed)
@@ -281,15 +271,10 @@ def test_a_command_that_ends_with_a_ctrl_c_still_waiting_reports_it(tmp_path, ca
 
 def test_an_error_after_a_ctrl_c_is_reported_as_the_interruption(tmp_path, capsys, monkeypatch):
     # a second Ctrl-C inside compiled JAX code reaches the command as JAX's own error, not KeyboardInterrupt
-    import signal
-
     import fitrank.config
 
-    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
-    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
-
     def pressed_then_failed(*args, **kwargs):
-        inside_jax["press"]()
+        press_ctrl_c_inside()
         raise RuntimeError("what JAX raises for an exception in a host callback")
 
     monkeypatch.setattr(fitrank.config, "effective_config", pressed_then_failed)

@@ -9,22 +9,18 @@ import pytest
 
 from fitrank import interrupt
 
-
-def _run_inside(module_name: str):
-    namespace = {"__name__": module_name, "signal": signal}
-    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", namespace)
-    namespace["press"]()
+from tests._ctrl_c import press_ctrl_c_inside
 
 
 def test_plain_code_is_interrupted_at_once():
     with interrupt.handling_interrupts():
         with pytest.raises(KeyboardInterrupt):
-            _run_inside("some.user.module")
+            press_ctrl_c_inside("some.user.module")
 
 
 def test_inside_jax_the_request_waits_for_the_next_checkpoint():
     with interrupt.handling_interrupts():
-        _run_inside("jax._src.somewhere")  # no exception here
+        press_ctrl_c_inside("jax._src.somewhere")  # no exception here
         with pytest.raises(KeyboardInterrupt):
             interrupt.checkpoint()
     interrupt.checkpoint()  # leaving the block forgets the request
@@ -32,9 +28,9 @@ def test_inside_jax_the_request_waits_for_the_next_checkpoint():
 
 def test_a_second_ctrl_c_raises_at_once_even_inside_jax():
     with interrupt.handling_interrupts():
-        _run_inside("jaxlib.somewhere")
+        press_ctrl_c_inside("jaxlib.somewhere")
         with pytest.raises(KeyboardInterrupt):
-            _run_inside("jaxlib.somewhere")
+            press_ctrl_c_inside("jaxlib.somewhere")
 
 
 def test_inside_a_gc_callback_the_request_is_not_dropped():
@@ -64,7 +60,7 @@ def test_another_thread_neither_installs_a_handler_nor_forgets_the_main_threads_
     import threading
 
     with interrupt.handling_interrupts():
-        _run_inside("jax._src.somewhere")  # a request waits
+        press_ctrl_c_inside("jax._src.somewhere")  # a request waits
         worker = threading.Thread(target=lambda: interrupt.handling_interrupts().__enter__())
         worker.start()
         worker.join()
@@ -82,11 +78,6 @@ def test_an_ignored_sigint_stays_ignored():
         signal.signal(signal.SIGINT, previous)
 
 
-def _waiting_request():
-    """Inside handling_interrupts: a Ctrl-C that arrived inside JAX and waits for a checkpoint."""
-    _run_inside("jax._src.somewhere")
-
-
 def test_a_waiting_request_stops_the_snapshot_solves_and_every_commit(tmp_path):
     from fitrank.atomic import staged_file, staged_folder
     from fitrank.pagerank import PageRankProblem
@@ -98,20 +89,20 @@ def test_a_waiting_request_stops_the_snapshot_solves_and_every_commit(tmp_path):
     graph = generated("scale")[0].graph
     problem = PageRankProblem(graph, make_weighting("scale", graph))
     with interrupt.handling_interrupts():
-        _waiting_request()
+        press_ctrl_c_inside()  # inside JAX: it waits for a checkpoint
         with pytest.raises(KeyboardInterrupt):
             solve_snapshots(problem, problem.weighting.sample(4), chunk_size=1, progress=False)
     target = tmp_path / "result.txt"
     target.write_text("earlier\n")
     with interrupt.handling_interrupts():
-        _waiting_request()
+        press_ctrl_c_inside()  # inside JAX: it waits for a checkpoint
         with pytest.raises(KeyboardInterrupt), staged_file(target) as temp:
             temp.write_text("new\n")
     folder = tmp_path / "run"
     folder.mkdir()
     (folder / "a").write_text("earlier\n")
     with interrupt.handling_interrupts():
-        _waiting_request()
+        press_ctrl_c_inside()  # inside JAX: it waits for a checkpoint
         with pytest.raises(KeyboardInterrupt), staged_folder(folder) as staging:
             (staging / "b").write_text("new\n")
     assert target.read_text() == "earlier\n" and [p.name for p in folder.iterdir()] == ["a"]

@@ -238,15 +238,13 @@ def test_plots_write_readable_pngs(tmp_path, problem, objective):
 
 
 def test_a_ctrl_c_waiting_for_a_checkpoint_stops_training_at_the_next_step(problem, objective):
-    import signal
-
     from fitrank import interrupt
 
-    inside_jax = {"__name__": "jax._src.stand_in", "signal": signal}
-    exec("def press():\n    signal.raise_signal(signal.SIGINT)\n", inside_jax)
+    from tests._ctrl_c import press_ctrl_c_inside
+
     steps = []
     with interrupt.handling_interrupts(), pytest.raises(KeyboardInterrupt):
         optimize(objective, problem.weighting.theta0, LoopSettings(optimizer="sgd", learning_rate=0.5),
-                 callback=lambda row, theta: steps.append(row) or (inside_jax["press"]() if len(steps) == 2 else None),
+                 callback=lambda row, theta: steps.append(row) or (press_ctrl_c_inside() if len(steps) == 2 else None),
                  progress=False)
     assert len(steps) == 2
