@@ -94,6 +94,7 @@ def held_out_check(model: ReducedModel | RegionalModel, points: int = 4, *, top_
     start = time.perf_counter()
     tol = min(tol, REFERENCE_TOL)
     problem = model.problem
+    top_k = min(int(top_k), problem.graph.n)  # the nodes compared: all of them on a graph smaller than top_k
     thetas = fresh_points(model, int(points))
     solutions = solve_snapshots(problem, thetas, tol=tol, executor=executor, progress=progress, label="held-out solves")
     tau, l1, bound, error, passed = [], [], [], [], True
@@ -105,5 +106,5 @@ def held_out_check(model: ReducedModel | RegionalModel, points: int = 4, *, top_
         l1.append(point_l1)
         bound.append(model.certified_bound(theta, y))
         error.append(float(np.abs(x - y).sum()))
-    return HeldOutCheck(thetas, np.array(tau), np.array(l1), np.array(bound), np.array(error), int(top_k),
+    return HeldOutCheck(thetas, np.array(tau), np.array(l1), np.array(bound), np.array(error), top_k,
                         bool(passed), time.perf_counter() - start)

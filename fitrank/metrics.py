@@ -168,21 +168,26 @@ def within_tolerance(x: np.ndarray, tau: float, l1: float, *, k: int, tau_min: f
     return bool(order_ok and l1 <= l1_max)
 
 
-def pair_accuracy(scores: np.ndarray, pairs: Pairs) -> float:
+def pair_accuracy(scores: np.ndarray, pairs: Pairs, *, resolution: float = 0.0) -> float:
     """Weighted fraction of pairs that ``scores`` orders as the pairs say.
 
     A pair counts 1 when score[preferred] > score[other], 0 when it is below, and
-    1/2 on an exact tie: a tie is a coin flip, so a constant score vector gets
+    1/2 on a tie: a tie is a coin flip, so a constant score vector gets
     accuracy 0.5 rather than 0 or 1 (the convention of the Mann-Whitney U
-    statistic).
+    statistic). With ``resolution`` > 0, scores that differ by no more than it
+    tie too: the scores of a solve certified to an error of ``resolution``
+    cannot order such a pair (nodes of identical position in the graph differ
+    by rounding only, and would otherwise count 0 or 1 by that rounding).
 
     Args:
       scores: (n,) one score per node (any positive multiple of x gives the same value).
       pairs: the pairs; their node indices index ``scores``.
+      resolution: largest difference of two scores that is a tie (>= 0; in the
+        units of ``scores``).
 
     Returns:
-      sum_q w_q [1(s_a > s_b) + 1/2 1(s_a = s_b)] / sum_q w_q in [0, 1];
-      NaN when there are no pairs.
+      sum_q w_q [1(s_a - s_b > res) + 1/2 1(|s_a - s_b| <= res)] / sum_q w_q in
+      [0, 1]; NaN when there are no pairs.
 
     References:
       Mann & Whitney, "On a test of whether one of two random variables is
@@ -192,8 +197,10 @@ def pair_accuracy(scores: np.ndarray, pairs: Pairs) -> float:
     scores = _vector(scores, "scores")
     if len(pairs) == 0:
         return float("nan")
-    a, b = scores[pairs.preferred], scores[pairs.other]
-    hit = (a > b).astype(np.float64) + 0.5 * (a == b)
+    if not resolution >= 0.0:
+        raise ValueError(f"resolution must be >= 0, got {resolution}")
+    difference = scores[pairs.preferred] - scores[pairs.other]
+    hit = (difference > resolution).astype(np.float64) + 0.5 * (np.abs(difference) <= resolution)
     weight = np.asarray(pairs.weight, dtype=np.float64)
     return float(np.dot(weight, hit) / weight.sum())
 

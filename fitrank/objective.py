@@ -387,11 +387,13 @@ def x_space_loss(pairs: Pairs, spec: ObjectiveSpec, *, n: int) -> XSpaceLoss:
     return XSpaceLoss(nodes, _pair_arrays(pairs, nodes, spec, n), loss.name, int(n))
 
 
-def pair_summary(x: np.ndarray, pairs: Pairs, spec: ObjectiveSpec) -> dict:
+def pair_summary(x: np.ndarray, pairs: Pairs, spec: ObjectiveSpec, *, resolution: float = 0.0) -> dict:
     """Pair count, weighted mean loss (no penalty) and accuracy of a full vector x (n,) on ``pairs``.
 
     ``spec`` must have its loss parameter set (pass the training objective's ``spec``
-    so every split is scored with the same loss).
+    so every split is scored with the same loss). ``resolution``: score
+    differences up to it count as ties in the accuracy
+    (:func:`~fitrank.metrics.pair_accuracy`).
 
     Returns:
       ``{"pairs": Q, "loss": float, "accuracy": float}``; loss and accuracy are NaN when Q = 0.
@@ -400,7 +402,7 @@ def pair_summary(x: np.ndarray, pairs: Pairs, spec: ObjectiveSpec) -> dict:
     if len(pairs) == 0:
         return {"pairs": 0, "loss": float("nan"), "accuracy": float("nan")}
     return {"pairs": len(pairs), "loss": x_space_loss(pairs, spec, n=x.size).value(x),
-            "accuracy": pair_accuracy(x, pairs)}
+            "accuracy": pair_accuracy(x, pairs, resolution=resolution)}
 
 
 class FullSolves:
@@ -484,8 +486,11 @@ def full_objective(graph: Graph, weighting: Weighting, pairs: Pairs, spec: Objec
 
 
 def full_accuracy(solves: FullSolves, pairs: Pairs) -> Callable[[np.ndarray], float]:
-    """``theta -> weighted pair accuracy`` of the full solution, reusing ``solves``' cache."""
-    return lambda theta: pair_accuracy(solves.solve(theta)[0], pairs)
+    """``theta -> weighted pair accuracy`` of the full solution, reusing ``solves``' cache.
+
+    Scores within the solves' certified tolerance of each other count as ties.
+    """
+    return lambda theta: pair_accuracy(solves.solve(theta)[0], pairs, resolution=solves.tol)
 
 
 __all__ = [

@@ -204,14 +204,16 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
     solved = solve_operator(op, tol=min(config.graph.solver_tol, REFERENCE_TOL))
     x = solved.x
     splits = {name: dataset.pairs.subset(name) for name in SPLITS}
-    report = {"full": {name: pair_summary(x, pairs, spec) for name, pairs in splits.items()},
+    # scores that differ by no more than the full solve's certified error tie, in both vectors: no order is sure
+    resolution = solved.report.bound
+    report = {"full": {name: pair_summary(x, pairs, spec, resolution=resolution) for name, pairs in splits.items()},
               "solver": {"iterations": solved.report.iterations, "bound": solved.report.bound,
                          "method": solved.report.method}}
     if model is not None:
         y = model.vector(theta)
-        k = config.check.top_k
+        k = min(config.check.top_k, x.size)  # the nodes compared: all of them on a graph smaller than top_k
         tau, l1 = agreement_with_solve(x, y, k=k, x_bound=solved.report.bound)
-        report["reduced"] = {name: pair_summary(y, pairs, spec) for name, pairs in splits.items()}
+        report["reduced"] = {name: pair_summary(y, pairs, spec, resolution=resolution) for name, pairs in splits.items()}
         report.update({
             "top_k": k,
             "tau_topk": tau,
@@ -458,6 +460,9 @@ def summary_lines(result: FitResult) -> list[str]:
         if block:
             cells = "  ".join(_cell(block[name]["accuracy"]) for name in SPLITS)
             lines.append(f"  {label:<18}{cells}")
+    if _kept_theta0(record):
+        lines.append("note: validation accuracy was best before the first step, so the parameters stay at theta0 "
+                     "(the best validation step is the one kept); check that the valid pairs agree with the train pairs")
     if record.get("outside_sampled_box"):
         lines.append(f"note: {', '.join(record['outside_sampled_box'])} ended outside the box sampled offline, "
                      "where the reduced model extrapolates; widen weighting.bound to sample there")
@@ -477,6 +482,13 @@ def summary_lines(result: FitResult) -> list[str]:
     if result.run_dir is not None:
         lines.append(f"run folder: {result.run_dir}")
     return lines
+
+
+def _kept_theta0(record: dict) -> bool:
+    """True when training took steps but the best-validation rule kept the starting parameters theta0."""
+    stepped = any(round_record["steps"] > 0 for round_record in record["rounds"])
+    validated = record["metrics"]["full"]["valid"]["pairs"] > 0
+    return stepped and validated and record["params"] == record["theta0"]
 
 
 def _cell(value, spec: str = "7.4f", width: int = 7) -> str:

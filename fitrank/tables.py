@@ -825,8 +825,11 @@ def _merge_duplicate_edges(
 
     Returns:
       src, dst, relation, base (E',) and features (E', f). Merged base weights
-      are summed; merged features are base-weight-weighted means (an unmerged
-      edge keeps its features bit for bit).
+      are summed; merged features are base-weight-weighted means, kept within
+      the merged rows' range. Features that agree on every merged row keep
+      their value bit for bit, as does an unmerged edge: a rounded mean of
+      equal values would turn a constant column into one that varies by
+      rounding, which standardising would blow up to unit spread.
     """
     first = np.flatnonzero(starts)
     sizes = np.diff(np.append(first, starts.shape[0]))
@@ -839,7 +842,9 @@ def _merge_duplicate_edges(
         relative = base / np.repeat(np.maximum.reduceat(base, first), sizes)
         share = relative / np.repeat(np.add.reduceat(relative, first), sizes)
         weighted = np.add.reduceat(features * share[:, None], first, axis=0)
-        merged_features[groups] = weighted[groups]
+        low, high = np.minimum.reduceat(features, first, axis=0), np.maximum.reduceat(features, first, axis=0)
+        mean = np.where(low == high, features[first], np.clip(weighted, low, high))
+        merged_features[groups] = mean[groups]
     return src[first], dst[first], relation[first], summed, merged_features
 
 

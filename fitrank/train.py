@@ -323,6 +323,8 @@ def optimize(
                     stop = "stalled"
                 else:
                     theta, step = new_theta, step + 1
+                    if step == 1:  # the first step compiles: time the rate, hence the ETA, from the second on
+                        bar.reset()
                     bar.update(1)
     if valid is None:
         best_acc = float("nan")

@@ -367,16 +367,31 @@ def _standardise(features: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarr
     Each column is first divided by its largest magnitude, so the mean and the
     standard deviation cannot overflow whatever the units (values near 1e308
     are finite, their sum is not; at 1e200 the variance is not). A constant
-    column is only centred.
+    column becomes exactly 0, so its parameter has no effect at all. Constant
+    means a spread within ``CONSTANT_SPREAD`` of the column's largest
+    magnitude: values that differ by rounding only (one merged from rows of
+    different weight, say) are not a feature, and standardising them would
+    blow their rounding up to unit spread.
     """
     magnitude = np.abs(features).max(axis=0)
     magnitude = np.where(magnitude > 0, magnitude, 1.0)
     unit = features / magnitude
     unit_center = unit.mean(axis=0)
     unit_spread = unit.std(axis=0)
-    varies = unit_spread > 0
-    standard = (unit - unit_center) / np.where(varies, unit_spread, 1.0)
+    varies = unit_spread > CONSTANT_SPREAD
+    constant = unit_spread <= CONSTANT_SPREAD  # not ~varies: a NaN spread must carry its NaN on, to be refused
+    standard = np.where(constant, 0.0, (unit - unit_center) / np.where(varies, unit_spread, 1.0))
     return unit_center * magnitude, np.where(varies, unit_spread * magnitude, 1.0), standard
+
+
+CONSTANT_SPREAD = 64 * np.finfo(np.float64).eps
+"""Largest standard deviation, relative to a column's largest magnitude, that is rounding and not a feature.
+
+Common practice (scikit-learn's scaler likewise treats a variance within a
+rounding bound as zero; recalled from memory): a few dozen units in the last
+place (1.4e-14) is far above the rounding of stored or averaged values and
+far below any real variation of a measured feature.
+"""
 
 
 # Transitions are module-level functions of (theta, tables) only, so one jit-compiled

@@ -73,6 +73,11 @@ def test_held_out_check_fails_a_basis_too_small_and_passes_a_good_one():
     assert good.passed, good.summary()
 
 
+def test_held_out_check_reports_the_nodes_it_compared():
+    model = _model("scale", rank=8)
+    assert held_out_check(model, 1, top_k=10 ** 6, progress=False).top_k == model.problem.graph.n
+
+
 def test_held_out_check_needs_a_point():
     with pytest.raises(ValueError, match="at least one point"):
         held_out_check(_model("scale"), 0, progress=False)

@@ -165,5 +165,27 @@ def test_pair_accuracy_matches_a_loop(values, seed):
     assert pair_accuracy(scores, _pairs(a, b, w)) == pytest.approx(total / w.sum(), abs=1e-12)
 
 
+def test_pair_accuracy_ties_scores_within_the_resolution():
+    # nodes 0 and 1 differ by rounding only (3e-15); nodes 2 and 3 by a real 2^-20 (about 1e-6, exact in binary)
+    scores = np.array([0.25, 0.25 + 3e-15, 0.5, 0.5 + 2.0**-20])
+    pairs = _pairs([0, 1, 2, 3], [1, 0, 3, 2])
+    assert pair_accuracy(scores, pairs) == 0.5  # by rounding: one right, one wrong, one wrong, one right
+    assert pair_accuracy(scores, pairs, resolution=1e-10) == (0.5 + 0.5 + 0.0 + 1.0) / 4
+    assert pair_accuracy(scores, pairs, resolution=2.0**-20) == 0.5  # a difference equal to it is a tie
+    with pytest.raises(ValueError, match="resolution"):
+        pair_accuracy(scores, pairs, resolution=-1.0)
+
+
+@given(st.lists(st.floats(-5, 5), min_size=3, max_size=40), st.integers(0, 2**32 - 1), st.floats(0.0, 2.0))
+def test_pair_accuracy_with_a_resolution_matches_a_loop(values, seed, resolution):
+    scores = np.asarray(values)
+    rng = np.random.default_rng(seed)
+    a = rng.integers(0, scores.size, 30)
+    b = (a + rng.integers(1, scores.size, 30)) % scores.size
+    total = sum(1.0 if scores[i] - scores[j] > resolution else 0.5 if abs(scores[i] - scores[j]) <= resolution
+                else 0.0 for i, j in zip(a, b))
+    assert pair_accuracy(scores, _pairs(a, b), resolution=resolution) == pytest.approx(total / 30, abs=1e-12)
+
+
 def test_pair_accuracy_of_no_pairs_is_nan():
     assert math.isnan(pair_accuracy(np.ones(3), _pairs([], [])))

@@ -238,6 +238,15 @@ def test_merged_features_of_huge_weights_stay_finite(tmp_path):
     np.testing.assert_allclose(graph.features[:, 0], [1.0, 3.0], rtol=1e-15)
 
 
+def test_merged_rows_with_equal_features_keep_them_exactly(tmp_path):
+    # 1.3 averaged with weights 0.1, 0.2, 0.7 comes out 1.2999999999999998 in floating point; merged rows that
+    # agree must keep their value bit for bit, or a constant column would vary by rounding
+    rows = "".join(f"a,b,{w},1.3,{f}\n" for w, f in ((0.1, 5), (0.2, 6), (0.7, 7))) + "b,a,1,1.3,2\n"
+    graph = read_edges(write(tmp_path, "e.csv", "source,target,weight,const,varies\n" + rows))
+    assert graph.features[:, 0].tolist() == [1.3, 1.3]
+    np.testing.assert_allclose(graph.features[:, 1], [2.0, 0.5 + 1.2 + 4.9], rtol=1e-15)
+
+
 def test_self_loops_are_kept_and_counted(tmp_path):
     notes: list[str] = []
     graph = read_edges(write(tmp_path, "e.csv", "source,target\na,a\na,b\nb,b\n"), notes=notes)
