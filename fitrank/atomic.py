@@ -126,7 +126,11 @@ def staged_file(target: str | Path, suffix: str = ""):
         yield Path(temp)
         interrupt.checkpoint()
         os.chmod(temp, 0o644)  # mkstemp makes it private
-        os.replace(temp, target)
+        try:
+            os.replace(temp, target)
+        except OSError as err:  # an immutable or otherwise protected target: it is left as it was
+            raise FitrankInputError(f"{target}: cannot be replaced ({err.strerror or err}); check its "
+                                    "permissions or write to another path") from None
     finally:
         Path(temp).unlink(missing_ok=True)
 

@@ -10,8 +10,9 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+from concurrent.futures import BrokenExecutor
 
-from fitrank.errors import FitrankInputError
+from fitrank.errors import ConvergenceError, FitrankInputError
 from fitrank import interrupt
 
 
@@ -204,9 +205,14 @@ def main(argv: list[str] | None = None) -> int:
             status = int(args.func(args) or 0)
             interrupt.checkpoint()  # a Ctrl-C that came where it had to wait still ends the command as interrupted
             return status
-        except FitrankInputError as err:
+        except (FitrankInputError, ConvergenceError) as err:
             print(f"fitrank {args.command}: error: {err}", file=sys.stderr)
             return 2
+        except BrokenExecutor as err:
+            print(f"fitrank {args.command}: error: a worker process stopped before its solves were done ({err}); "
+                  "no model or run was saved; run again, with fewer reduction.workers if memory ran out",
+                  file=sys.stderr)
+            return 1
         except (KeyboardInterrupt, Exception) as err:
             # a second Ctrl-C raised inside compiled JAX code comes back as JAX's own error
             if not (isinstance(err, KeyboardInterrupt) or interrupt.requested()):

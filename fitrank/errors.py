@@ -1,7 +1,10 @@
 """Typed errors. Each carries a one-line message a user can act on.
 
-The CLI turns :class:`FitrankInputError` (and its subclasses) into one line on
-stderr and exit code 2, with no traceback.
+The CLI turns :class:`FitrankInputError` (and its subclasses) and
+:class:`ConvergenceError` into one line on stderr and exit code 2, with no
+traceback. Errors whose constructor takes more than the message pickle by
+their constructor's arguments, so one raised in a worker process (snapshot
+solves on an executor) arrives whole instead of breaking the pool.
 """
 
 from __future__ import annotations
@@ -23,6 +26,9 @@ class DataError(FitrankInputError):
         super().__init__(f"{where}: {problem}")
         self.path, self.row, self.column, self.problem = path, row, column, problem
 
+    def __reduce__(self):
+        return type(self), (self.path, self.problem, self.row, self.column)
+
 
 class ConfigError(FitrankInputError):
     """A problem in a TOML config or a --set override: names the key."""
@@ -30,7 +36,10 @@ class ConfigError(FitrankInputError):
     def __init__(self, key: str, problem: str, source: str | None = None):
         where = f"{source}: " if source else ""
         super().__init__(f"{where}config key '{key}': {problem}")
-        self.key, self.problem = key, problem
+        self.key, self.problem, self.source = key, problem, source
+
+    def __reduce__(self):
+        return type(self), (self.key, self.problem, self.source)
 
 
 class ModelMismatchError(FitrankInputError):
@@ -51,4 +60,7 @@ class ConvergenceError(RuntimeError):
             f"{what} did not converge: {iterations} iterations, residual {residual:.3e}, "
             f"certified L1 error bound {bound:.3e} > tol {tol:.1e}; raise maxiter or loosen tol"
         )
-        self.iterations, self.residual, self.bound, self.tol = iterations, residual, bound, tol
+        self.what, self.iterations, self.residual, self.bound, self.tol = what, iterations, residual, bound, tol
+
+    def __reduce__(self):
+        return type(self), (self.what, self.iterations, self.residual, self.bound, self.tol)

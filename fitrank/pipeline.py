@@ -26,7 +26,7 @@ import pandas as pd
 
 from fitrank.atomic import link_or_copy, refuse_replacing_foreign, refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
-from fitrank.errors import ConfigError, FitrankInputError
+from fitrank.errors import ConfigError, FitrankInputError, ModelMismatchError
 from fitrank.graph import SPLITS, Dataset
 from fitrank.metrics import REFERENCE_TOL, agreement_with_solve, within_tolerance
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
@@ -114,6 +114,9 @@ def obtain_model(config: Config, problem: PageRankProblem, *, executor=None, pro
     if path.is_file():
         try:
             model = load_model(path, problem)
+        except ModelMismatchError:
+            log(f"not reusing {path}: it was built for other data or settings (its fingerprint differs); "
+                "building a new one")
         except FitrankInputError as err:
             log(f"not reusing {path}: {err}")
         else:
@@ -160,7 +163,12 @@ def refuse_bad_outputs(config: Config, *, run: bool) -> None:
 def refuse_bad_snapshot_file(config: Config) -> None:
     """Raise before any solving if ``reduction.snapshot_file`` cannot be written or would overwrite another file."""
     if config.reduction.snapshot_file:
-        _refuse_overwriting(Path(config.reduction.snapshot_file), "reduction.snapshot_file", _is_npy, "a .npy file")
+        path = Path(config.reduction.snapshot_file)
+        if path.resolve() == model_path(config).resolve():
+            raise ConfigError("reduction.snapshot_file", f"{path} is also reduction.model, which would overwrite "
+                                                         "the snapshots; choose another path")
+        _refuse_overwriting(path, "reduction.snapshot_file", _is_snapshot_matrix,
+                            "a snapshot matrix (a 2-d float64 .npy file)")
 
 
 def _refuse_overwriting(path: Path, key: str, is_ours, what: str) -> None:
@@ -171,9 +179,13 @@ def _refuse_overwriting(path: Path, key: str, is_ours, what: str) -> None:
                                "another path")
 
 
-def _is_npy(path: Path) -> bool:
-    with open(path, "rb") as handle:
-        return handle.read(6) == b"\x93NUMPY"
+def _is_snapshot_matrix(path: Path) -> bool:
+    """A .npy file holding what fitrank writes there: one 2-d float64 matrix (any other array is the user's)."""
+    try:
+        stored = np.load(path, mmap_mode="r", allow_pickle=False)  # reads the header only
+    except (OSError, ValueError, EOFError):
+        return False
+    return isinstance(stored, np.ndarray) and stored.ndim == 2 and stored.dtype == np.float64
 
 
 def _is_model_file(path: Path) -> bool:
@@ -186,7 +198,8 @@ def _is_model_file(path: Path) -> bool:
 
 
 def _same_build(a: ReductionSettings, b: ReductionSettings) -> bool:
-    keys = ("method", "samples", "rank", "energy", "max_rank", "rows", "gamma", "edge_budget", "seed", "regions")
+    keys = ("method", "samples", "rank", "energy", "max_rank", "rows", "gamma", "edge_budget", "probes", "seed",
+            "snapshot_tol", "regions")
     return all(getattr(a, k) == getattr(b, k) for k in keys)
 
 

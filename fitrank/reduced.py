@@ -312,10 +312,13 @@ def _assemble(problem: PageRankProblem, settings: ReductionSettings, basis: PodB
                                  seed=settings.seed)
             rows = choice.rows
             info["row_candidates_scored"] = choice.candidates_scored
-        if rows.size < basis.rank:
+        if rows.size < basis.rank and settings.edge_budget is not None:
             raise FitrankInputError(
-                f"only {rows.size} interpolation rows fit (k = {basis.rank}); raise reduction.edge_budget, "
-                "lower reduction.gamma or use a smaller basis")
+                f"only {rows.size} interpolation rows fit (k = {basis.rank}) within reduction.edge_budget = "
+                f"{settings.edge_budget}; raise it, raise reduction.gamma (cheaper rows first) or use a smaller basis")
+        if rows.size < basis.rank:
+            raise FitrankInputError(f"only {rows.size} independent interpolation rows exist (k = {basis.rank}); "
+                                    "use a smaller basis (reduction.rank or reduction.max_rank)")
         arrays, touched = interpolation_arrays(problem, vectors, rows)
         info.update(rows=int(rows.size), edges_touched=touched,
                     edges_touched_fraction=touched / max(1, problem.graph.num_edges))
@@ -358,9 +361,13 @@ def sample_and_solve(problem: PageRankProblem, settings: ReductionSettings, *, e
     thetas = problem.weighting.sample(settings.samples, seed=settings.seed)
     out = None
     if settings.snapshot_path:
-        os.makedirs(os.path.dirname(os.path.abspath(settings.snapshot_path)), exist_ok=True)
-        out = np.lib.format.open_memmap(settings.snapshot_path, mode="w+", dtype=np.float64,
-                                        shape=(problem.graph.n, thetas.shape[0]))
+        try:
+            os.makedirs(os.path.dirname(os.path.abspath(settings.snapshot_path)), exist_ok=True)
+            out = np.lib.format.open_memmap(settings.snapshot_path, mode="w+", dtype=np.float64,
+                                            shape=(problem.graph.n, thetas.shape[0]))
+        except OSError as err:  # a read-only or immutable file, a full disk: checked paths can still refuse
+            raise FitrankInputError(f"{settings.snapshot_path}: cannot write the snapshot file "
+                                    f"({err.strerror or err}); choose another reduction.snapshot_file") from None
     snapshots = solve_snapshots(problem, thetas, tol=settings.snapshot_tol, executor=executor, out=out,
                                 progress=progress)
     return thetas, snapshots, {"snapshots_s": time.perf_counter() - start}

@@ -3,9 +3,9 @@
 The solves are independent, so they run on a ``concurrent.futures.Executor``:
 none (in this process), local processes (:func:`local_executor`) or a Dask
 cluster (``distributed.Client(...).get_executor()``), with no change of code.
-Work is sent in chunks: each task carries the problem once, rebuilds the
-weighting from its kind and options (closures do not pickle), and warm-starts
-each solve from the previous one of its chunk.
+Work is sent in chunks of :data:`CHUNK` solves: each task carries the problem
+once, rebuilds the weighting from its kind and options (closures do not
+pickle), and warm-starts each solve from the previous one of its chunk.
 """
 
 from __future__ import annotations
@@ -20,6 +20,19 @@ from fitrank import interrupt
 from fitrank.graph import Graph
 from fitrank.pagerank import PageRankProblem
 from fitrank.weightings import make_weighting
+
+
+CHUNK = 8
+"""Solves per task, whatever the executor.
+
+A solve warm-started from its chunk's previous one takes fewer iterations
+(a whole offline stage about 20% less time than cold starts, measured on a
+200k-node graph) and lands on a slightly different vector within the
+tolerance, so the chunks decide the snapshots' last digits. The same chunks
+for every executor make a build bit-identical serial, on local processes or
+on Dask; 8 keeps most of the warm starts and gives an executor m / 8 tasks
+to spread.
+"""
 
 
 def local_executor(workers: int | None = None) -> ProcessPoolExecutor:
@@ -64,8 +77,8 @@ def solve_snapshots(
       thetas: (m, p) parameter points.
       tol, maxiter: full-solver settings (certified L1 error per snapshot <= tol).
       executor: where to run the solves; None runs them here, one after another.
-      chunk_size: solves per task; default splits the work into about four
-        tasks per worker so progress stays visible and workers stay busy.
+      chunk_size: solves per task (default :data:`CHUNK`); the snapshots depend on
+        it in their last digits, never on the executor.
       out: optional (n, m) float64 array to fill, e.g. a ``np.memmap`` for
         snapshot sets larger than memory.
       progress: show a progress bar (counts and ETA) on stderr.
@@ -80,8 +93,7 @@ def solve_snapshots(
         out = np.empty((n, m))
     elif out.shape != (n, m):
         raise ValueError(f"snapshot output has shape {out.shape}; expected {(n, m)}")
-    workers = getattr(executor, "_max_workers", 1) if executor is not None else 1
-    size = chunk_size or max(1, -(-m // (4 * workers)))
+    size = chunk_size or CHUNK
     starts = list(range(0, m, size))
     bar = _progress_bar(m, label, progress)
     args = (problem.weighting.kind, problem.weighting.options, problem.damping, problem.teleport, problem.dangling)

@@ -174,8 +174,20 @@ def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten
     precious = tmp_path / "precious.csv"
     precious.write_text("a,b\n1,2\n")
     assert main(["build", str(config), "--set", f'reduction.snapshot_file="{precious}"']) == 2
-    _one_line_error(capsys, "reduction.snapshot_file", "not a .npy file")
+    _one_line_error(capsys, "reduction.snapshot_file", "not a snapshot matrix")
     assert precious.read_text() == "a,b\n1,2\n"
+    # a .npy of the user's own (not a 2-d float64 matrix) is theirs too
+    vector = tmp_path / "userdata.npy"
+    np.save(vector, np.arange(10.0))
+    before = vector.read_bytes()
+    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{vector}"']) == 2
+    _one_line_error(capsys, "reduction.snapshot_file", "userdata.npy", "not a snapshot matrix")
+    assert vector.read_bytes() == before
+    # the model would be written over the snapshots
+    shared = tmp_path / "both.npy"
+    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{shared}"',
+                 "--set", f'reduction.model="{shared}"']) == 2
+    _one_line_error(capsys, "reduction.snapshot_file", "also reduction.model")
     assert main(["build", str(config), "--set", f'reduction.snapshot_file="{tmp_path}"']) == 2
     assert "is a folder" in capsys.readouterr().err
     # a missing folder is created, as for the model file; an earlier snapshot file is rewritten
@@ -214,7 +226,7 @@ def test_the_snapshot_file_is_checked_even_when_no_run_folder_is_written(tmp_pat
 
     notes = tmp_path / "notes.csv"
     notes.write_text("mine\n")
-    with pytest.raises(ConfigError, match="reduction.snapshot_file.*not a .npy file"):
+    with pytest.raises(ConfigError, match="reduction.snapshot_file.*not a snapshot matrix"):
         fit(_config(tmp_path), overrides=[f'reduction.snapshot_file="{notes}"'], write=False, progress=False,
             log=lambda message: None)
     assert notes.read_text() == "mine\n"
@@ -283,3 +295,40 @@ def test_an_error_after_a_ctrl_c_is_reported_as_the_interruption(tmp_path, capsy
     monkeypatch.setattr(fitrank.config, "effective_config", lambda *a, **k: 1 / 0)
     with pytest.raises(ZeroDivisionError):  # without a Ctrl-C an error stays an error
         main(["settings", str(_config(tmp_path))])
+
+
+@pytest.mark.slow
+def test_a_solve_that_fails_in_a_worker_process_is_one_line(tmp_path):
+    # the worker's ConvergenceError must come back whole (it had broken the pool, ending in a traceback)
+    from fitrank.errors import ConvergenceError
+    from fitrank.pagerank import PageRankProblem
+    from fitrank.snapshots import local_executor, solve_snapshots
+    from fitrank.weightings import make_weighting
+
+    graph = generated("scale")[0].graph
+    problem = PageRankProblem(graph, make_weighting("scale", graph))
+    with local_executor(1) as pool, pytest.raises(ConvergenceError, match="did not converge: 5 iterations"):
+        solve_snapshots(problem, problem.weighting.sample(2), tol=1e-30, maxiter=5, executor=pool, progress=False)
+
+
+def test_unreachable_tolerances_and_lost_workers_end_in_one_line(tmp_path, capsys, monkeypatch):
+    from concurrent.futures.process import BrokenProcessPool
+
+    import fitrank.reduced
+    from fitrank.errors import ConvergenceError
+
+    config = _config(tmp_path)
+
+    def unconverged(*args, **kwargs):
+        raise ConvergenceError("PageRank solve", 10_000, 3.7e-17, 2.1e-16, 1e-30)
+
+    monkeypatch.setattr(fitrank.reduced, "solve_snapshots", unconverged)
+    assert main(["build", str(config)]) == 2
+    _one_line_error(capsys, "fitrank build: error: PageRank solve did not converge", "loosen tol")
+
+    def killed(*args, **kwargs):
+        raise BrokenProcessPool("A child process terminated abruptly, the process pool is not usable anymore")
+
+    monkeypatch.setattr(fitrank.reduced, "solve_snapshots", killed)
+    assert main(["build", str(config)]) == 1
+    _one_line_error(capsys, "fitrank build: error: a worker process stopped", "no model or run was saved")

@@ -146,6 +146,25 @@ def test_a_shared_model_file_is_created_by_the_first_fit_and_reused_by_the_next(
     assert (tmp_path / "run1" / "model.npz").read_bytes() == kept
 
 
+def test_a_model_is_not_reused_by_other_snapshot_tolerances_or_other_data(tmp_path):
+    config = _config(tmp_path, "scale")
+    shared = tmp_path / "shared.npz"
+    settings = ["reduction.samples=16", "output.plots=false", f'reduction.model="{shared}"']
+    fit(config, overrides=settings, out=tmp_path / "run1", progress=False, log=lambda m: None)
+    # snapshots solved to another tolerance make another basis: rebuilt, and the run records what it used
+    logged = []
+    looser = fit(config, overrides=settings + ["reduction.snapshot_tol=1e-3"], out=tmp_path / "run2",
+                 progress=False, log=logged.append)
+    assert looser.record["model"]["reused"] is False and looser.model.settings.snapshot_tol == 1e-3
+    assert any("other reduction settings" in line for line in logged), logged
+    logged.clear()
+    other = fit(config, overrides=settings + ["graph.damping=0.8"], out=tmp_path / "run3", progress=False,
+                log=logged.append)
+    assert other.record["model"]["reused"] is False
+    assert any("built for other data or settings" in line and "building a new one" in line
+               for line in logged), logged
+
+
 @pytest.mark.parametrize("override,key", [
     ("training.lerning_rate=0.1", "training.lerning_rate"),
     ("training.steps=-3", "training.steps"),

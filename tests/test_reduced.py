@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import functools
-from concurrent.futures import ThreadPoolExecutor
+from concurrent.futures import Executor, ThreadPoolExecutor
 
 import jax
 import jax.numpy as jnp
@@ -16,8 +16,8 @@ from fitrank.basis import extend_basis, pod_basis, snapshot_gram
 from fitrank.errors import FitrankInputError, ModelMismatchError
 from fitrank.galerkin import solve_once
 from fitrank import interpolation
-from fitrank.interpolation import (RowChoice, _local_least_squares, constrained_least_squares, interpolation_arrays,
-                                   select_rows, source_layout)
+from fitrank.interpolation import (RowChoice, _local_least_squares, choose_rows, constrained_least_squares,
+                                   interpolation_arrays, select_rows, source_layout)
 from fitrank.pagerank import PageRankProblem
 from fitrank.reduced import ReductionSettings, build_reduced_model, enrich, load_reduced_model
 from fitrank.snapshots import solve_snapshots
@@ -154,11 +154,37 @@ def test_save_load_round_trip_and_fingerprint_refusal(tmp_path):
 
 def test_snapshots_on_an_executor_equal_serial_ones():
     problem = _problem("scale")
-    thetas = problem.weighting.sample(6, seed=1)
+    thetas = problem.weighting.sample(20, seed=1)
     serial = solve_snapshots(problem, thetas, progress=False)
+    # the same chunks whatever the executor and its size: the same warm starts, the same bits
+    for workers in (2, 3):
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            np.testing.assert_array_equal(solve_snapshots(problem, thetas, executor=pool, progress=False), serial)
+    # other chunks warm-start otherwise: equal within the solves' tolerance, not to the bit
     with ThreadPoolExecutor(max_workers=2) as pool:
         parallel = solve_snapshots(problem, thetas, executor=pool, chunk_size=2, progress=False)
     np.testing.assert_allclose(parallel, serial, rtol=0, atol=1e-12)
+
+
+class _CountingExecutor(Executor):
+    """An executor that, like Dask's, does not say how many workers it has, and counts its tasks."""
+
+    def __init__(self):
+        self.pool, self.tasks = ThreadPoolExecutor(max_workers=2), 0
+
+    def submit(self, fn, /, *args, **kwargs):
+        self.tasks += 1
+        return self.pool.submit(fn, *args, **kwargs)
+
+    def shutdown(self, wait=True, **kwargs):
+        self.pool.shutdown(wait=wait)
+
+
+def test_an_executor_that_hides_its_size_still_gets_many_tasks():
+    problem = _problem("scale")
+    with _CountingExecutor() as pool:
+        solve_snapshots(problem, problem.weighting.sample(40, seed=3), executor=pool, progress=False)
+    assert pool.tasks == 5  # 40 solves in chunks of 8
 
 
 def test_method_of_snapshots_from_memmap_equals_svd(tmp_path):
@@ -442,3 +468,14 @@ def test_scorers_of_one_model_share_one_function():
     for scorer, chosen in zip((first, second), nodes):
         np.testing.assert_allclose(np.asarray(values(theta, scorer.arrays)), model.vector(theta)[chosen],
                                    rtol=1e-10, atol=1e-15)
+
+
+def test_a_budget_too_small_for_k_rows_says_what_helps_and_the_advice_holds():
+    problem = _problem("features")
+    with pytest.raises(FitrankInputError, match=r"edge_budget = 200; raise it, raise reduction.gamma"):
+        build_reduced_model(problem, ReductionSettings(samples=12, rank=8, edge_budget=200, gamma=0.0),
+                            progress=False)
+    # the advice: a larger gamma ranks cheap rows first, so more of them fit the same budget
+    vectors = np.linalg.qr(solve_snapshots(problem, problem.weighting.sample(12), progress=False))[0][:, :8]
+    fitted = [choose_rows(problem, vectors, 16, gamma=gamma, budget=200).rows.size for gamma in (0.0, 16.0)]
+    assert fitted[1] > fitted[0], fitted  # 4 and 12 rows when written

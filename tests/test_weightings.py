@@ -459,3 +459,20 @@ def test_feature_transition_keeps_the_fast_path_beside_dangling_nodes(monkeypatc
 
     monkeypatch.setattr(weightings, "_feature_transition_rescaled", refuse)
     np.testing.assert_array_equal(weighting.transition(weighting.theta0 + 0.3, weighting.tables, xp=np), expected)
+
+
+def test_a_small_spread_on_a_large_offset_keeps_its_digits():
+    # 1e9 + noise of 0.01 and 1e-4: the deviations from the mean are exact differences of close floats, and a
+    # second pass removes the mean's own rounding, so the reference below is accurate to rounding. Dividing by
+    # the magnitude first had been 5e-4 and 3.6 off at unit spread.
+    from fitrank.weightings import _standardise
+
+    rng = np.random.default_rng(1)
+    features = np.column_stack([rng.normal(size=20_000), 1e9 + rng.normal(0.0, 1e-2, 20_000),
+                                1e9 + rng.normal(0.0, 1e-4, 20_000)])
+    center, spread, standard = _standardise(features)
+    deviation = features - features.mean(axis=0)
+    np.testing.assert_allclose(center, features.mean(axis=0) + deviation.mean(axis=0), rtol=1e-15, atol=1e-15)
+    deviation -= deviation.mean(axis=0)
+    np.testing.assert_allclose(spread, deviation.std(axis=0), rtol=1e-12)
+    np.testing.assert_allclose(standard, deviation / deviation.std(axis=0), rtol=0, atol=1e-12)
