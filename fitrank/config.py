@@ -125,11 +125,14 @@ class ReductionSection:
     regions: int = _key(_REDUCTION.regions, "local models, each with its own basis for one region of the "
                                             "parameter domain (1 = one global model); more regions reach the "
                                             "same accuracy with a smaller k, given more samples", "int", low=1)
-    workers: int = _key(1, "processes for the full solves of the offline stage", "int", low=1)
+    workers: int = _key(1, "processes for the full solves of the offline stage (the model is bit-identical for "
+                           "any number)", "int", low=1)
     model: Path | None = _key(None, "reduced-model file to reuse or create; \"\" = model.npz in the run folder",
                               "path?")
     snapshot_file: Path | None = _key(None, "memory-mapped .npy file for the snapshot matrix (for graphs whose "
-                                            "n x samples matrix should not sit in RAM); \"\" = in memory", "path?")
+                                            "n x samples matrix should not sit in RAM); \"\" = in memory. An "
+                                            "existing file is replaced only when it holds a 2-d float64 matrix, as "
+                                            "fitrank writes; any other file there is refused", "path?")
 
 
 @dataclass(frozen=True)
