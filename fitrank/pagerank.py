@@ -201,18 +201,20 @@ def walk_operator(
         raise FitrankInputError(f"theta has a non-finite entry ({weighting.param_names[bad]} = {theta[bad]}); "
                                 "PageRank is defined for finite parameters only")
     v = check_teleport(graph.teleport if teleport is None else teleport, graph.n)
-    # NumPy, not JAX: the same formula, and a single solve pays no compile (0.2 s at 1M edges); a weight
-    # that leaves the float range is reported below, in one line, instead of by NumPy's warning first
-    with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
-        p = np.asarray(weighting.transition(theta, weighting.tables, xp=np), dtype=np.float64)
+
+    def transition(at: np.ndarray) -> np.ndarray:
+        # NumPy, not JAX: the same formula, and a single solve pays no compile (0.2 s at 1M edges); a weight
+        # that leaves the float range is reported below, in one line, instead of by NumPy's warning first
+        with np.errstate(all="ignore"):
+            return np.asarray(weighting.transition(at, weighting.tables, xp=np), dtype=np.float64)
+
+    p = transition(theta)
     if not np.all(np.isfinite(p)):
         # caught here, a solver would iterate to maxiter on NaN before failing
         bad = int(np.argmin(np.isfinite(p)))
         source, target = graph.node_ids[graph.src[bad]], graph.node_ids[graph.dst[bad]]
         where = f"the {weighting.kind} weighting gives a non-finite transition probability on the edge {source} -> {target}"
-        with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
-            theta0 = np.asarray(weighting.transition(weighting.theta0, weighting.tables, xp=np), dtype=np.float64)
-        if np.all(np.isfinite(theta0)):  # the data are fine: these parameters are too far out for float64
+        if np.all(np.isfinite(transition(weighting.theta0))):  # the data are fine: theta is too far out for float64
             raise FitrankInputError(
                 f"{where} at parameters this far out (largest |theta| = {np.abs(theta).max():.3g}): its weights "
                 "leave the float range; narrow weighting.bound or raise training.regularization")

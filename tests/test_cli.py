@@ -34,6 +34,13 @@ def _one_line_error(capsys, *words: str) -> str:
     return err
 
 
+def _build_refused(capsys, config, settings: dict, *words: str) -> str:
+    """Check that ``fitrank build`` with these ``--set`` path settings exits 2 with one line holding ``words``."""
+    overrides = [part for key, path in settings.items() for part in ("--set", f'{key}="{path}"')]
+    assert main(["build", str(config), *overrides]) == 2
+    return _one_line_error(capsys, *words)
+
+
 def test_build_saves_the_model_and_reports_it(tmp_path, capsys):
     config = _config(tmp_path)
     assert main(["build", str(config), "--set", f'reduction.model="{tmp_path / "m.npz"}"']) == 0
@@ -122,12 +129,10 @@ def test_unwritable_output_paths_are_refused_before_any_work(tmp_path, capsys):
     config = _config(tmp_path)
     blocker = tmp_path / "blocker"
     blocker.write_text("not a folder\n")
-    assert main(["build", str(config), "--set", f'reduction.model="{blocker / "m.npz"}"']) == 2
-    _one_line_error(capsys, "reduction.model", "blocker is a file")
+    _build_refused(capsys, config, {"reduction.model": blocker / "m.npz"}, "reduction.model", "blocker is a file")
     assert main(["fit", str(config), "--quiet", "--out", str(blocker / "run")]) == 2
     _one_line_error(capsys, "output.folder", "blocker is a file")
-    assert main(["build", str(config), "--set", f'reduction.model="{tmp_path}"']) == 2
-    assert "is a folder" in capsys.readouterr().err
+    _build_refused(capsys, config, {"reduction.model": tmp_path}, "is a folder")
     # fit with a shared model file under a file, and generate into a folder under a file
     assert main(["fit", str(config), "--quiet", "--out", str(tmp_path / "run"),
                  "--set", f'reduction.model="{blocker / "m.npz"}"']) == 2
@@ -173,23 +178,21 @@ def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten
     config = _config(tmp_path)
     precious = tmp_path / "precious.csv"
     precious.write_text("a,b\n1,2\n")
-    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{precious}"']) == 2
-    _one_line_error(capsys, "reduction.snapshot_file", "not a snapshot matrix")
+    _build_refused(capsys, config, {"reduction.snapshot_file": precious}, "reduction.snapshot_file",
+                   "not a snapshot matrix")
     assert precious.read_text() == "a,b\n1,2\n"
     # a .npy of the user's own (not a 2-d float64 matrix) is theirs too
     vector = tmp_path / "userdata.npy"
     np.save(vector, np.arange(10.0))
     before = vector.read_bytes()
-    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{vector}"']) == 2
-    _one_line_error(capsys, "reduction.snapshot_file", "userdata.npy", "not a snapshot matrix")
+    _build_refused(capsys, config, {"reduction.snapshot_file": vector}, "reduction.snapshot_file", "userdata.npy",
+                   "not a snapshot matrix")
     assert vector.read_bytes() == before
     # the model would be written over the snapshots
     shared = tmp_path / "both.npy"
-    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{shared}"',
-                 "--set", f'reduction.model="{shared}"']) == 2
-    _one_line_error(capsys, "reduction.snapshot_file", "also reduction.model")
-    assert main(["build", str(config), "--set", f'reduction.snapshot_file="{tmp_path}"']) == 2
-    assert "is a folder" in capsys.readouterr().err
+    _build_refused(capsys, config, {"reduction.snapshot_file": shared, "reduction.model": shared},
+                   "reduction.snapshot_file", "also reduction.model")
+    _build_refused(capsys, config, {"reduction.snapshot_file": tmp_path}, "is a folder")
     # a missing folder is created, as for the model file; an earlier snapshot file is rewritten
     snapshots = tmp_path / "new" / "snapshots.npy"
     for _ in range(2):
@@ -212,8 +215,8 @@ def test_a_model_path_never_overwrites_what_is_not_a_model_and_an_empty_file_is_
     assert model.read_bytes() == whole[: len(whole) // 2]
     edges = generated("scale")[2] / "edges.csv"
     before = edges.read_bytes()
-    assert main(["build", str(config), "--set", f'reduction.model="{edges}"']) == 2
-    assert "not a fitrank model file" in capsys.readouterr().err and edges.read_bytes() == before
+    _build_refused(capsys, config, {"reduction.model": edges}, "not a fitrank model file")
+    assert edges.read_bytes() == before
     model.write_bytes(b"")  # nothing to lose: rebuilt, not a traceback
     assert main(["fit", str(config), *common]) == 0
     assert model.read_bytes()[:4] == b"PK\x03\x04"
