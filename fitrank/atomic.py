@@ -91,46 +91,62 @@ def staged_folder(target: str | Path):
     existed) is left exactly as it was.
     """
     target = Path(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
+    with _refused_as_input_error(target):
+        target.parent.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     try:
         yield staging
         interrupt.checkpoint()  # an interrupted run never replaces an earlier result
-        os.chmod(staging, 0o755)  # mkdtemp makes it private
-        if target.exists():
-            old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
-            try:
-                os.rename(target, old / "previous")
+        with _refused_as_input_error(target):
+            os.chmod(staging, 0o755)  # mkdtemp makes it private
+            if target.exists():
+                _swap_in(staging, target)
+            else:
                 os.rename(staging, target)
-            except BaseException:
-                if not target.exists() and (old / "previous").exists():
-                    os.rename(old / "previous", target)  # never leave the earlier result hidden
-                shutil.rmtree(old, ignore_errors=True)
-                raise
-            shutil.rmtree(old)
-        else:
-            os.rename(staging, target)
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise
+
+
+def _swap_in(staging: Path, target: Path) -> None:
+    """Replace the folder ``target`` by ``staging``; if either rename fails, ``target`` is as it was."""
+    old = Path(tempfile.mkdtemp(prefix=f".{target.name}.old-", dir=target.parent))
+    try:
+        os.rename(target, old / "previous")
+        os.rename(staging, target)
+    except BaseException:
+        if not target.exists() and (old / "previous").exists():
+            os.rename(old / "previous", target)  # never leave the earlier result hidden
+        shutil.rmtree(old, ignore_errors=True)
+        raise
+    shutil.rmtree(old, ignore_errors=True)  # the earlier result is replaced whether or not its copy goes
+
+
+@contextlib.contextmanager
+def _refused_as_input_error(target: Path):
+    """Turn the file system refusing to write ``target`` (permissions, an immutable file, a full disk) into one line."""
+    try:
+        yield
+    except OSError as err:
+        raise FitrankInputError(f"{target}: cannot be written ({err.strerror or err}); check its permissions "
+                                "and free space, or write to another path") from None
 
 
 @contextlib.contextmanager
 def staged_file(target: str | Path, suffix: str = ""):
     """Yield a temporary path beside ``target``; on success it replaces ``target`` (mode 0644)."""
     target = Path(target)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    handle, temp = tempfile.mkstemp(prefix=f".{target.stem}-", suffix=suffix or target.suffix, dir=target.parent)
-    os.close(handle)
+    with _refused_as_input_error(target):
+        target.parent.mkdir(parents=True, exist_ok=True)
+        handle, temp = tempfile.mkstemp(prefix=f".{target.stem}-", suffix=suffix or target.suffix,
+                                        dir=target.parent)
+        os.close(handle)
     try:
         yield Path(temp)
         interrupt.checkpoint()
-        os.chmod(temp, 0o644)  # mkstemp makes it private
-        try:
+        with _refused_as_input_error(target):  # an immutable or otherwise protected target is left as it was
+            os.chmod(temp, 0o644)  # mkstemp makes it private
             os.replace(temp, target)
-        except OSError as err:  # an immutable or otherwise protected target: it is left as it was
-            raise FitrankInputError(f"{target}: cannot be replaced ({err.strerror or err}); check its "
-                                    "permissions or write to another path") from None
     finally:
         Path(temp).unlink(missing_ok=True)
 

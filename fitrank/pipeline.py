@@ -182,10 +182,14 @@ def _refuse_overwriting(path: Path, key: str, is_ours, what: str) -> None:
 def _is_snapshot_matrix(path: Path) -> bool:
     """A .npy file holding what fitrank writes there: one 2-d float64 matrix (any other array is the user's)."""
     try:
-        stored = np.load(path, mmap_mode="r", allow_pickle=False)  # reads the header only
+        with open(path, "rb") as handle:  # the header only, and the file closed at once (an .npz too)
+            version = np.lib.format.read_magic(handle)
+            read_header = (np.lib.format.read_array_header_1_0 if version == (1, 0)
+                           else np.lib.format.read_array_header_2_0)
+            shape, _, dtype = read_header(handle)
     except (OSError, ValueError, EOFError):
         return False
-    return isinstance(stored, np.ndarray) and stored.ndim == 2 and stored.dtype == np.float64
+    return len(shape) == 2 and dtype == np.float64
 
 
 def _is_model_file(path: Path) -> bool:

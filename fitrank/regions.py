@@ -271,12 +271,16 @@ def build_model(problem: PageRankProblem, settings: ReductionSettings = Reductio
     # streamed snapshots (a memory-mapped file, or too large to copy) are read in row blocks: one pass
     # for the Gram matrix of all samples, whose sub-matrices serve every region, one per region for U
     gram = snapshot_gram(snapshots) if any(streams(snapshots, int(belongs.sum())) for belongs in members) else None
-    for belongs in members:
+    for region, belongs in enumerate(members):
         start = time.perf_counter()
         basis = pod_basis(snapshots, rank=settings.rank, energy=settings.energy, max_rank=settings.max_rank,
                           columns=np.flatnonzero(belongs), gram=gram)
-        parts.append(_assemble(problem, settings, basis, thetas[belongs], method,
-                               {"basis_s": time.perf_counter() - start}))
+        try:
+            parts.append(_assemble(problem, settings, basis, thetas[belongs], method,
+                                   {"basis_s": time.perf_counter() - start}))
+        except FitrankInputError as err:  # too few rows fit: say in which region
+            raise FitrankInputError(f"region {region + 1} of {len(members)} ({int(belongs.sum())} samples): "
+                                    f"{err}") from None
         for name in ("basis_s", "assemble_s"):
             timings[name] = timings.get(name, 0.0) + parts[-1].info["timings"][name]
     return RegionalModel(problem, settings, tuple(parts), centres, _summary(parts, timings, thetas.shape[0]))

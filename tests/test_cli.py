@@ -188,6 +188,12 @@ def test_snapshot_file_paths_are_checked_and_a_foreign_file_is_never_overwritten
     _build_refused(capsys, config, {"reduction.snapshot_file": vector}, "reduction.snapshot_file", "userdata.npy",
                    "not a snapshot matrix")
     assert vector.read_bytes() == before
+    archive = tmp_path / "arrays.npy"  # an .npz archive under an .npy name: read, closed, refused and kept
+    with open(archive, "wb") as handle:
+        np.savez(handle, a=np.ones((3, 2)))
+    before = archive.read_bytes()
+    _build_refused(capsys, config, {"reduction.snapshot_file": archive}, "arrays.npy", "not a snapshot matrix")
+    assert archive.read_bytes() == before
     # the model would be written over the snapshots
     shared = tmp_path / "both.npy"
     _build_refused(capsys, config, {"reduction.snapshot_file": shared, "reduction.model": shared},

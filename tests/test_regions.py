@@ -199,3 +199,10 @@ def test_weighting_coordinates_ignore_what_the_walk_ignores():
 def test_more_regions_than_samples_is_refused():
     with pytest.raises(FitrankInputError, match="5 regions need at least as many samples"):
         build_model(_problem("scale"), ReductionSettings(samples=4, regions=5), progress=False)
+
+
+def test_a_region_whose_rows_do_not_fit_the_edge_budget_is_named():
+    settings = ReductionSettings(method="interpolation", samples=24, rank=8, regions=2, edge_budget=20, gamma=0.0)
+    with pytest.raises(FitrankInputError, match=r"^region 1 of 2 \(\d+ samples\): only \d+ interpolation rows fit "
+                                                r".*edge_budget = 20"):
+        build_model(_problem("scale"), settings, progress=False)
