@@ -91,13 +91,13 @@ def staged_folder(target: str | Path):
     existed) is left exactly as it was.
     """
     target = Path(target)
-    with _refused_as_input_error(target):
+    with refused_as_input_error(target):
         target.parent.mkdir(parents=True, exist_ok=True)
         staging = Path(tempfile.mkdtemp(prefix=f".{target.name}.tmp-", dir=target.parent))
     try:
         yield staging
         interrupt.checkpoint()  # an interrupted run never replaces an earlier result
-        with _refused_as_input_error(target):
+        with refused_as_input_error(target):
             os.chmod(staging, 0o755)  # mkdtemp makes it private
             if target.exists():
                 _swap_in(staging, target)
@@ -123,20 +123,27 @@ def _swap_in(staging: Path, target: Path) -> None:
 
 
 @contextlib.contextmanager
-def _refused_as_input_error(target: Path):
-    """Turn the file system refusing to write ``target`` (permissions, an immutable file, a full disk) into one line."""
+def refused_as_input_error(target, advice: str = "check its permissions and free space, or write to another path"):
+    """Turn the file system refusing to write ``target`` (permissions, an immutable file, a full disk) into one line.
+
+    Args:
+      target: the path being written, named in the message.
+      advice: what the user can do about it.
+
+    Raises:
+      FitrankInputError: in place of any OSError raised inside the block.
+    """
     try:
         yield
     except OSError as err:
-        raise FitrankInputError(f"{target}: cannot be written ({err.strerror or err}); check its permissions "
-                                "and free space, or write to another path") from None
+        raise FitrankInputError(f"{target}: cannot be written ({err.strerror or err}); {advice}") from None
 
 
 @contextlib.contextmanager
 def staged_file(target: str | Path, suffix: str = ""):
     """Yield a temporary path beside ``target``; on success it replaces ``target`` (mode 0644)."""
     target = Path(target)
-    with _refused_as_input_error(target):
+    with refused_as_input_error(target):
         target.parent.mkdir(parents=True, exist_ok=True)
         handle, temp = tempfile.mkstemp(prefix=f".{target.stem}-", suffix=suffix or target.suffix,
                                         dir=target.parent)
@@ -144,7 +151,7 @@ def staged_file(target: str | Path, suffix: str = ""):
     try:
         yield Path(temp)
         interrupt.checkpoint()
-        with _refused_as_input_error(target):  # an immutable or otherwise protected target is left as it was
+        with refused_as_input_error(target):  # an immutable or otherwise protected target is left as it was
             os.chmod(temp, 0o644)  # mkstemp makes it private
             os.replace(temp, target)
     finally:

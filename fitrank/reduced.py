@@ -23,7 +23,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from fitrank.atomic import staged_file
+from fitrank.atomic import refused_as_input_error, staged_file
 from fitrank.basis import PodBasis, extend_basis, pod_basis
 from fitrank.errors import FitrankInputError, ModelMismatchError
 from fitrank.galerkin import galerkin_arrays, galerkin_coefficients
@@ -361,13 +361,11 @@ def sample_and_solve(problem: PageRankProblem, settings: ReductionSettings, *, e
     thetas = problem.weighting.sample(settings.samples, seed=settings.seed)
     out = None
     if settings.snapshot_path:
-        try:
+        # a read-only or immutable file, a full disk: checked paths can still refuse
+        with refused_as_input_error(settings.snapshot_path, "choose another reduction.snapshot_file"):
             os.makedirs(os.path.dirname(os.path.abspath(settings.snapshot_path)), exist_ok=True)
             out = np.lib.format.open_memmap(settings.snapshot_path, mode="w+", dtype=np.float64,
                                             shape=(problem.graph.n, thetas.shape[0]))
-        except OSError as err:  # a read-only or immutable file, a full disk: checked paths can still refuse
-            raise FitrankInputError(f"{settings.snapshot_path}: cannot write the snapshot file "
-                                    f"({err.strerror or err}); choose another reduction.snapshot_file") from None
     snapshots = solve_snapshots(problem, thetas, tol=settings.snapshot_tol, executor=executor, out=out,
                                 progress=progress)
     return thetas, snapshots, {"snapshots_s": time.perf_counter() - start}

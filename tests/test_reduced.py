@@ -479,3 +479,18 @@ def test_a_budget_too_small_for_k_rows_says_what_helps_and_the_advice_holds():
     vectors = np.linalg.qr(solve_snapshots(problem, problem.weighting.sample(12), progress=False))[0][:, :8]
     fitted = [choose_rows(problem, vectors, 16, gamma=gamma, budget=200).rows.size for gamma in (0.0, 16.0)]
     assert fitted[1] > fitted[0], fitted  # 4 and 12 rows when written
+
+
+def test_a_snapshot_file_the_file_system_refuses_is_one_line(tmp_path, monkeypatch):
+    from fitrank.reduced import sample_and_solve
+
+    def refuse(*args, **kwargs):
+        raise PermissionError(1, "Operation not permitted")
+
+    monkeypatch.setattr(np.lib.format, "open_memmap", refuse)  # as an immutable file does (CI runs as root)
+    path = tmp_path / "snapshots.npy"
+    with pytest.raises(FitrankInputError) as error:
+        sample_and_solve(_problem("scale"), ReductionSettings(samples=4, snapshot_path=str(path)), progress=False)
+    message = str(error.value)
+    assert "\n" not in message and message.startswith(f"{path}: cannot be written (Operation not permitted)")
+    assert "reduction.snapshot_file" in message
