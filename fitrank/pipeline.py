@@ -480,6 +480,11 @@ def summary_lines(result: FitResult) -> list[str]:
     if _kept_theta0(record):
         lines.append("note: validation accuracy was best before the first step, so the parameters stay at theta0 "
                      "(the best validation step is the one kept); check that the valid pairs agree with the train pairs")
+    for round_record in record["rounds"]:
+        if round_record["stopped_because"] == "non_finite":
+            lines.append(f"note: training round {round_record['round']} stopped after {round_record['steps']} step(s): "
+                         "the objective or its gradient was not finite there (the pair losses overflow when "
+                         "training.temperature is tiny or pair weights are extreme); the parameters are the last finite ones")
     if record.get("outside_sampled_box"):
         lines.append(f"note: {', '.join(record['outside_sampled_box'])} ended outside the box sampled offline, "
                      "where the reduced model extrapolates; widen weighting.bound to sample there")

@@ -314,14 +314,14 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
         table = _read_csv(file, text_columns) if kind == "CSV" else _read_parquet(file, text_columns)
         names = table.column_names
     except (pa.ArrowException, OSError, UnicodeDecodeError) as err:  # the last: a header that is not UTF-8
-        message = (str(err).strip().splitlines() or [type(err).__name__])[0]
-        if "Empty CSV file" in message:
-            raise DataError(path, "the file is empty (no header row)") from None
+        message = _first_line(err)
         row = None
         if kind == "CSV":
             not_text = _not_csv_text(file)
             if not_text is not None:
                 raise DataError(path, not_text[1], not_text[0]) from None
+            if "Empty CSV file" in message:
+                raise DataError(path, "the file is empty (no header row)") from None
             if "CSV parse error" in message:
                 row, message = _csv_error_row(file, text_columns, message)
         raise DataError(path, f"cannot read as {kind}: {message}", row) from None
@@ -331,6 +331,10 @@ def _read_table(path: str | Path, text_columns: tuple[str, ...]) -> pa.Table:
     if table.num_rows == 0:
         raise DataError(path, "the table has no data rows")
     return table
+
+
+def _first_line(err: BaseException) -> str:
+    return (str(err).strip().splitlines() or [type(err).__name__])[0]
 
 
 # Text columns that hold a few distinct values (labels, not ids).
@@ -380,8 +384,11 @@ def _not_csv_text(file: Path) -> tuple[int | None, str] | None:
 
     Arrow's own messages then print raw bytes or a column number only.
     """
-    with pa.input_stream(str(file), compression="detect") as stream:
-        data = stream.read()
+    try:
+        with pa.input_stream(str(file), compression="detect") as stream:
+            data = stream.read()
+    except (pa.ArrowException, OSError) as err:  # a damaged or mislabelled .gz / .bz2
+        return None, f"cannot be decompressed ({_first_line(err)}); the file is damaged or not what its name says"
     if data[:4] == b"PAR1":
         return None, "this is a Parquet file, not CSV text; give it a .parquet name"
     if data[:2] in (b"\xff\xfe", b"\xfe\xff"):

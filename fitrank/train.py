@@ -159,14 +159,36 @@ def _optimizer(name: str, learning_rate: float) -> optax.GradientTransformation:
 # line search takes seconds, more with a model's solve inlined several times).
 _OBJECTIVES: dict[int, Objective] = {}
 _TOKENS = itertools.count()
+# An error raised inside a callback reaches the caller as JAX's own INTERNAL error, with the
+# original only in its text: the callback records it here and returns NaN, and the step that
+# called the compiled code raises the original (see _raising_failures).
+_FAILURES: dict[int, Exception] = {}
 
 
 def _host_value_and_grad(token, theta):
-    # JAX runs callbacks with a default device set; unset it so the objective's compiled
-    # program (cached under the caller's context) is reused instead of compiled again.
-    with jax.default_device(None):
-        value, grad = _OBJECTIVES[int(token)](theta)
-    return np.float64(value), np.asarray(grad, dtype=np.float64)
+    token = int(token)
+    if token not in _FAILURES:
+        try:
+            # JAX runs callbacks with a default device set; unset it so the objective's compiled
+            # program (cached under the caller's context) is reused instead of compiled again.
+            with jax.default_device(None):
+                value, grad = _OBJECTIVES[token](theta)
+            return np.float64(value), np.asarray(grad, dtype=np.float64)
+        except Exception as err:  # noqa: BLE001  (raised again, as itself, by _raising_failures)
+            _FAILURES[token] = err
+    return np.float64(np.nan), np.full(np.shape(theta), np.nan)
+
+
+def _raising_failures(fn, token: int):
+    """``fn`` (a compiled step that calls the objective through the host callback), raising what the objective raised."""
+    def run(*args):
+        out = jax.block_until_ready(fn(*args))
+        failure = _FAILURES.pop(token, None)
+        if failure is not None:
+            raise failure
+        return out
+
+    return run
 
 
 def _host_shapes(theta):
@@ -244,10 +266,12 @@ def _step_functions(objective: Objective, settings: LoopSettings):
     evaluate, update = _line_search_steps(optimizer)
     key = jnp.asarray(token, dtype=jnp.int64)
     try:
-        yield (optimizer, lambda theta, state, arrays: evaluate(theta, state, key),
-               lambda theta, state, value, grad, arrays: update(theta, state, value, grad, key))
+        yield (optimizer, _raising_failures(lambda theta, state, arrays: evaluate(theta, state, key), token),
+               _raising_failures(lambda theta, state, value, grad, arrays: update(theta, state, value, grad, key),
+                                 token))
     finally:
         del _OBJECTIVES[token]
+        _FAILURES.pop(token, None)
 
 
 def optimize(
@@ -289,7 +313,8 @@ def optimize(
             tick = time.perf_counter()
             arrays = batch_arrays(objective, rng, settings.batch_pairs)
             value, grad = evaluate(theta, state, arrays)
-            loss, grad_norm = float(value), float(np.linalg.norm(np.asarray(grad)))
+            with np.errstate(over="ignore", invalid="ignore"):  # a norm that overflows is caught just below
+                loss, grad_norm = float(value), float(np.linalg.norm(np.asarray(grad)))
             seconds = time.perf_counter() - tick
             current = np.asarray(theta)
             if not (np.isfinite(loss) and np.isfinite(grad_norm)):

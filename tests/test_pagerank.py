@@ -269,6 +269,26 @@ def test_adjoint_gradient_reuses_a_given_operator():
     np.testing.assert_allclose(with_op, without, rtol=1e-10, atol=1e-14)
 
 
+@pytest.mark.parametrize("size", [1e-200, 1e-300, 1e250])
+def test_adjoint_gradient_of_a_tiny_or_huge_df_dx_is_the_scaled_gradient(size):
+    # A loss far out on its flat tail has df/dx near 1e-200; squares of that underflow inside
+    # BiCGSTAB. The adjoint system is linear in df/dx (Giles & Pierce 2000), so the gradient
+    # must be the ordinary one times the same factor, here on a graph slow enough to mix that
+    # the automatic choice goes on from power iteration to BiCGSTAB.
+    graph = random_typed_graph(13, n=40, num_relations=3)
+    weighting = make_weighting("scale", graph)
+    theta = random_theta(weighting, 13)
+    op = walk_operator(graph, weighting, theta, damping=0.99)
+    x = solve_operator(op, tol=1e-13).x
+    g = np.random.default_rng(14).normal(size=graph.n)
+    ordinary, report = adjoint_gradient(graph, weighting, theta, x, g, op=op)
+    scaled, scaled_report = adjoint_gradient(graph, weighting, theta, x, g * size, op=op)
+    assert report.converged and scaled_report.converged
+    np.testing.assert_allclose(scaled, ordinary * size, rtol=1e-12)
+    # the report is in df/dx's own units: the default tolerance 1e-12 relative to max |df/dx|
+    assert 0 < scaled_report.residual <= 1e-12 * np.abs(g * size).max() <= scaled_report.bound * 1e12
+
+
 def test_every_solver_converges_on_rank_sinks():
     # Closed 2-cycles give the walk the eigenvalues +1 and -1 (rank sinks): power iteration then
     # converges like alpha^k only. Reference: scipy.sparse.linalg.spsolve of M x = (1 - alpha) v.

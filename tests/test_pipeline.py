@@ -90,6 +90,22 @@ def test_a_top_k_beyond_the_graph_is_reported_as_the_nodes_compared(tmp_path):
     assert "tau@151 " in line and "5000" not in line, line
 
 
+def test_the_summary_says_when_training_stopped_on_values_that_were_not_finite(tmp_path):
+    # ann has no in-edge, so it ranks last at theta0: both training pairs are misordered there, and at a
+    # temperature of 1e-300 their logistic losses' gradients overflow: no step can be taken
+    (tmp_path / "edges.csv").write_text("source,target,relation,weight\nann,bo,x,1\nann,bo,y,1\nbo,bo,x,1\n"
+                                        "bo,cy,y,2\n")
+    (tmp_path / "pairs.csv").write_text("preferred,other,split\nann,cy,train\nann,bo,train\n")
+    config = tmp_path / "tiny.toml"
+    config.write_text(f'[data]\nedges = "{tmp_path / "edges.csv"}"\npairs = "{tmp_path / "pairs.csv"}"\n'
+                      '[weighting]\nkind = "scale"\n[training]\nloss = "logistic"\n')
+    result = fit(config, overrides=FAST + ["training.temperature=1e-300"], write=False, progress=False,
+                 log=lambda m: None)
+    assert result.record["rounds"][0]["stopped_because"] == "non_finite"
+    note = [line for line in summary_lines(result) if "not finite" in line]
+    assert note and note[0].startswith("note: training round 0 stopped after 0 step(s)"), summary_lines(result)
+
+
 @pytest.mark.parametrize("valid, kept", [("bo,cy", True), ("cy,bo", False)])
 def test_the_summary_says_when_validation_kept_theta0(tmp_path, valid, kept):
     # bo over cy reverses a training pair, so every step that fits the training pairs loses it and the

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gzip
+import re
 import math
 from pathlib import Path
 
@@ -448,6 +449,26 @@ def test_csv_that_is_not_utf8_text_says_so_and_where(tmp_path, content, message)
     path = tmp_path / "edges.csv"
     path.write_bytes(content)
     with pytest.raises(DataError, match=message):
+        read_edges(path)
+
+
+@pytest.mark.parametrize("name, content", [
+    ("edges.csv.gz", b"not gzip"),
+    ("edges.csv.bz2", b"junk"),
+    ("edges.csv.gz", gzip.compress(("source,target\n" + "".join(f"n{i * 7919 % 10007},n{i * 104729 % 10009}\n"
+                                                                 for i in range(5000))).encode())[:3000]),  # cut short
+])
+def test_a_damaged_compressed_table_is_one_line_naming_the_file(tmp_path, name, content):
+    path = tmp_path / name
+    path.write_bytes(content)
+    with pytest.raises(DataError, match=rf"{re.escape(name)}: cannot be decompressed \(.+\); the file is damaged"):
+        read_edges(path)
+
+
+def test_binary_bytes_without_a_line_end_are_not_called_empty(tmp_path):
+    path = tmp_path / "edges.csv"
+    path.write_bytes(bytes([0xC3, 0x28, 0xA0, 0xA1, 0xE2, 0x28, 0xA1, 0xF0, 0x28, 0x8C, 0xBC]))  # no NUL, no newline
+    with pytest.raises(DataError, match=r"edges\.csv: the header is not UTF-8 text"):
         read_edges(path)
 
 

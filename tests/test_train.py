@@ -10,7 +10,7 @@ import pytest
 from matplotlib import image
 
 from _dense_scorer import dense_scorer, tiny_problem
-from fitrank.errors import FitrankInputError
+from fitrank.errors import ConvergenceError, FitrankInputError
 from fitrank.metrics import pair_accuracy
 from fitrank.objective import Objective, ObjectiveSpec, calibrate, reduced_objective
 from fitrank.plots import plot_singular_values, plot_training, plot_weights
@@ -165,6 +165,20 @@ def test_a_non_finite_start_stops_at_once_and_keeps_the_start():
     assert result.stopped_because == "non_finite" and result.steps == 0 and result.history == ()
     assert np.array_equal(result.theta, start)
     assert result.path.shape == (0, 3)
+
+
+@pytest.mark.parametrize("optimizer", ["lbfgs", "adam"])
+def test_an_error_inside_the_objective_is_raised_as_itself(optimizer):
+    # L-BFGS reaches the objective through a host callback inside compiled code, where JAX would
+    # turn any exception into its own INTERNAL error; the user must see the original one line.
+    def failing(theta, arrays):
+        raise ConvergenceError("adjoint solve", 10, 1.0, 2.0, 1e-12)
+
+    objective = Objective(None, failing, {"weight": jnp.ones(1)}, np.zeros(2), ObjectiveSpec("logistic", 1.0))
+    with pytest.raises(ConvergenceError, match="^adjoint solve did not converge"):
+        optimize(objective, np.zeros(2), LoopSettings(optimizer=optimizer), progress=False)
+    from fitrank import train
+    assert not train._FAILURES and not train._OBJECTIVES  # nothing left behind for the next run
 
 
 def test_same_seed_same_numbers(problem, objective):
