@@ -83,6 +83,7 @@ def _cmd_build(args: argparse.Namespace) -> int:
     import time
     from dataclasses import replace
 
+    from fitrank import native
     from fitrank.config import load_config
     from fitrank.heldout import held_out_check
     from fitrank.pipeline import model_path, prepare, reduction_settings, refuse_bad_outputs
@@ -119,6 +120,8 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if model.method == "interpolation":
         print(f"rows chosen: {info['rows']}, edges touched: {info['edges_touched']} "
               f"({info['edges_touched_fraction']:.1%} of {problem.graph.num_edges})")
+        print("online least squares: " + ("native BLAS/LAPACK kernel" if native.available() else
+                                          "XLA operations (the native kernel is not built: python -m fitrank.native)"))
     if held_out is not None:
         print(_held_out_line(held_out, check))
     print(f"offline time: {time.perf_counter() - start:.1f} s "

@@ -11,6 +11,7 @@ import tomllib
 import numpy as np
 import pytest
 
+from fitrank import native
 from fitrank.cli import main
 from fitrank.config import config_keys
 
@@ -48,6 +49,7 @@ def test_build_saves_the_model_and_reports_it(tmp_path, capsys):
     assert (tmp_path / "m.npz").is_file()
     for words in ("k = ", "singular values", "rows chosen", "edges touched", "offline time"):
         assert words in out
+    assert ("online least squares: native BLAS/LAPACK kernel" in out) == native.available()
     assert "held-out check at 4 fresh points" in out
     with np.load(tmp_path / "m.npz") as saved:
         held_out = json.loads(str(saved["meta"]))["info"]["held_out"]
