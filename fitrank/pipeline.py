@@ -36,7 +36,7 @@ from fitrank.regions import RegionalModel, build_model, enrich_model, load_model
 from fitrank.snapshots import local_executor
 from fitrank.tables import load_dataset
 from fitrank.train import TrainResult, train_full, train_reduced
-from fitrank.weightings import make_weighting
+from fitrank.weightings import inert_parameters, make_weighting
 
 RESULT_FILE = "result.json"
 MODEL_FILE = "model.npz"
@@ -409,6 +409,7 @@ def _record(config, dataset, problem, theta, rounds, timings, model, reused) -> 
         "data": {"nodes": problem.graph.n, "edges": problem.graph.num_edges, "pairs": len(dataset.pairs),
                  "notes": list(dataset.notes)},
     }
+    record["inert_parameters"] = inert_parameters(weighting, theta)
     if weighting.coefficients is not None:
         record["mixture_weights"] = weighting.named(np.asarray(weighting.coefficients(np.asarray(theta))))
     if model is not None:
@@ -509,6 +510,10 @@ def summary_lines(result: FitResult) -> list[str]:
         lines.append(f"note: the reduced model orders {misordered} of {train_pairs} training pairs otherwise than "
                      "the full solve (their gaps are within its error), so they could not steer training; train "
                      "in the full space (training.space = \"full\") or raise reduction.rank")
+    if record.get("inert_parameters"):
+        lines.append(f"note: {', '.join(record['inert_parameters'])} cannot change the walk (each node weighs all "
+                     "its out-edges by it alike, and the normalisation cancels it), so the pairs cannot inform it; "
+                     "it stays at theta0")
     if record.get("outside_sampled_box"):
         lines.append(f"note: {', '.join(record['outside_sampled_box'])} ended outside the box sampled offline, "
                      "where the reduced model extrapolates; widen weighting.bound to sample there")

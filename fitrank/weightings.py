@@ -528,6 +528,34 @@ def _feature_transition_rescaled(weight, total, score, tables, xp=jnp):
     return _normalised_weights(weight, _segment_sum(weight, slot, num, xp), score, tables, xp)
 
 
+def inert_parameters(weighting: Weighting, theta, step: float = 1e-3) -> list[str]:
+    """Names of the parameters whose change leaves the walk as it is around ``theta`` (p,).
+
+    A parameter is inert when every node weighs all its out-edges by it alike:
+    a relation scale whose relation is the only one its sources use, a feature
+    that is constant among each node's out-edges. The normalisation then
+    cancels it, the pairs cannot inform it, and training leaves it at theta0.
+    Found by a central difference of the transition and leak per parameter;
+    changes at the level of rounding (1e-10 of the largest p) count as none.
+
+    Returns:
+      the inert parameters' names, in ``param_names`` order.
+    """
+    theta = np.asarray(theta, dtype=np.float64)
+    largest = max(float(np.abs(weighting.transition(theta, weighting.tables, xp=np)).max(initial=0.0)), 1e-300)
+    inert = []
+    for index, name in enumerate(weighting.param_names):
+        shift = np.zeros_like(theta)
+        shift[index] = step
+        moved = [(weighting.transition(at, weighting.tables, xp=np), weighting.leak_coefficients(at, xp=np))
+                 for at in (theta + shift, theta - shift)]
+        walk_change = np.abs(moved[0][0] - moved[1][0]).max(initial=0.0)
+        leak_change = np.abs(np.asarray(moved[0][1]) - np.asarray(moved[1][1])).max(initial=0.0)
+        if walk_change <= 1e-10 * largest and leak_change <= 1e-10:
+            inert.append(name)
+    return inert
+
+
 def row_cost(graph: Graph, weighting: Weighting) -> np.ndarray:
     """(n,) edges read to form row i of P(theta) on its own.
 

@@ -143,3 +143,11 @@ def test_the_summary_says_when_validation_kept_theta0(tmp_path, valid, kept):
     assert result.record["rounds"][0]["steps"] > 0
     assert (result.record["params"] == result.record["theta0"]) == kept
     assert any("stay at theta0" in line for line in summary_lines(result)) == kept, summary_lines(result)
+
+
+def test_the_summary_names_parameters_the_normalisation_cancels(star_fit):
+    # every node of the star sends all its edges by one relation (leaves: up, hub: down), so neither
+    # relation's scale can change the walk (fitrank.weightings.inert_parameters)
+    result, _ = star_fit
+    assert result.record["inert_parameters"] == ["scale:down", "scale:up"]
+    assert any(line.startswith("note: scale:down, scale:up cannot change the walk") for line in summary_lines(result))

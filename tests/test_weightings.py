@@ -22,7 +22,7 @@ from scipy import stats
 
 from fitrank.graph import Graph, build_graph
 from fitrank import weightings
-from fitrank.weightings import KINDS, affine_terms, make_weighting, row_cost
+from fitrank.weightings import KINDS, affine_terms, inert_parameters, make_weighting, row_cost
 
 
 def random_typed_graph(
@@ -476,3 +476,25 @@ def test_a_small_spread_on_a_large_offset_keeps_its_digits():
     deviation -= deviation.mean(axis=0)
     np.testing.assert_allclose(spread, deviation.std(axis=0), rtol=1e-12)
     np.testing.assert_allclose(standard, deviation / deviation.std(axis=0), rtol=0, atol=1e-12)
+
+
+def test_inert_parameters_are_those_the_normalisation_cancels():
+    # Nodes 0 and 1 use relations a and b side by side; node 2 uses only c, node 3 only d, and c
+    # appears nowhere else, while d also leaves node 0. Exact reasoning (p_e = a_e / d_src): scaling
+    # c rescales node 2's out-edges alike, so c is inert; d is not. Feature "flat" takes one value
+    # among each node's out-edges (though it differs between nodes), "spread" does not.
+    src = np.array([0, 0, 0, 1, 1, 2, 2, 3])
+    dst = np.array([1, 2, 3, 0, 2, 0, 1, 0])
+    relation = np.array([0, 1, 3, 0, 1, 2, 2, 3])
+    flat = np.array([1.0, 1.0, 1.0, 5.0, 5.0, -2.0, -2.0, 7.0])
+    spread = np.array([0.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0])
+    graph = build_graph(src, dst, 4, relation=relation, relation_names=("a", "b", "c", "d"),
+                        features=np.column_stack([flat, spread]), feature_names=("flat", "spread"))
+    scale = make_weighting("scale", graph)
+    assert inert_parameters(scale, scale.theta0) == ["scale:c"]
+    assert inert_parameters(scale, np.array([0.3, -1.0, 0.7, 1.2])) == ["scale:c"]
+    features = make_weighting("features", graph)
+    assert inert_parameters(features, np.array([0.4, -0.2])) == ["feat:flat"]
+    single = build_graph(src, dst, 4)
+    assert inert_parameters(make_weighting("scale", single), np.zeros(1)) == ["scale:edge"]  # one relation
+    assert inert_parameters(make_weighting("mixture", graph), np.zeros(4)) == []
