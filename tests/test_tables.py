@@ -89,6 +89,13 @@ def test_defaults_without_optional_columns(tmp_path):
     assert graph.features.shape == (3, 0) and graph.feature_names == ()
 
 
+def test_a_true_false_column_is_a_zero_one_feature(tmp_path):
+    graph = read_edges(write(tmp_path, "e.csv", "source,target,verified\na,b,true\nb,c,false\nc,a,TRUE\n"))
+    assert graph.feature_names == ("verified",)
+    by_source = dict(zip(graph.src.tolist(), graph.features[:, 0].tolist()))  # a, b, c are nodes 0, 1, 2
+    assert by_source == {0: 1.0, 1: 0.0, 2: 1.0}
+
+
 def test_node_order_is_first_appearance_row_by_row(tmp_path):
     graph = read_edges(write(tmp_path, "e.csv", "source,target\nd,a\nc,d\nb,e\n"))
     assert list(graph.node_ids) == ["d", "a", "c", "b", "e"]
