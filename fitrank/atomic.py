@@ -12,6 +12,7 @@ import contextlib
 import os
 import shutil
 import tempfile
+import warnings
 from pathlib import Path
 
 from fitrank import interrupt
@@ -120,6 +121,9 @@ def _swap_in(staging: Path, target: Path) -> None:
         shutil.rmtree(old, ignore_errors=True)
         raise
     shutil.rmtree(old, ignore_errors=True)  # the earlier result is replaced whether or not its copy goes
+    if old.exists():
+        warnings.warn(f"{old}: the copy of the earlier {target.name} could not be removed (the new one is in "
+                      "place); delete it by hand", RuntimeWarning, stacklevel=3)
 
 
 @contextlib.contextmanager

@@ -10,6 +10,7 @@ from __future__ import annotations
 import argparse
 import os
 import sys
+import warnings
 from concurrent.futures import BrokenExecutor
 
 from fitrank.errors import ConvergenceError, FitrankInputError
@@ -203,7 +204,10 @@ def _cmd_generate(args: argparse.Namespace) -> int:
 
 def main(argv: list[str] | None = None) -> int:
     args = _parser().parse_args(argv)
-    with interrupt.handling_interrupts():
+    with interrupt.handling_interrupts(), warnings.catch_warnings():
+        # a warning is one line on stderr, like an error, not Python's file:line form with source
+        warnings.showwarning = lambda message, *_, **__: print(
+            f"fitrank {args.command}: warning: {' '.join(str(message).split())}", file=sys.stderr)
         try:
             status = int(args.func(args) or 0)
             interrupt.checkpoint()  # a Ctrl-C that came where it had to wait still ends the command as interrupted

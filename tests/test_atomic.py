@@ -9,6 +9,7 @@ the path, with the earlier result untouched and no temporary entry left.
 
 from __future__ import annotations
 
+import argparse
 import errno
 import os
 
@@ -71,3 +72,31 @@ def test_an_error_inside_the_body_is_not_relabelled(tmp_path):
     with pytest.raises(FileNotFoundError), atomic.staged_folder(tmp_path / "out"):
         open(tmp_path / "missing.csv").close()
     assert list(tmp_path.iterdir()) == []
+
+
+def test_a_copy_of_the_earlier_folder_that_cannot_be_removed_is_named_in_a_warning(tmp_path, monkeypatch):
+    folder = tmp_path / "run"
+    folder.mkdir()
+    (folder / "a").write_text("earlier\n")
+    monkeypatch.setattr(atomic.shutil, "rmtree", lambda *args, **kwargs: None)  # the copy will not go
+    with pytest.warns(RuntimeWarning, match=r"the copy of the earlier run could not be removed") as caught:
+        with atomic.staged_folder(folder) as staging:
+            (staging / "a").write_text("new\n")
+    assert (folder / "a").read_text() == "new\n"
+    leftover = [entry for entry in tmp_path.iterdir() if entry.name.startswith(".run.old-")]
+    assert len(leftover) == 1 and str(leftover[0]) in str(caught[0].message)
+
+
+def test_the_command_line_prints_a_warning_as_one_line(monkeypatch, capsys):
+    from fitrank import cli
+
+    def warn_and_finish(args):
+        import warnings
+        warnings.warn("something to know,\nsaid over two lines", RuntimeWarning)
+        return 0
+
+    parser = cli._parser()
+    monkeypatch.setattr(cli, "_parser", lambda: parser)
+    monkeypatch.setattr(parser, "parse_args", lambda argv: argparse.Namespace(func=warn_and_finish, command="build"))
+    assert cli.main(["build", "x.toml"]) == 0
+    assert capsys.readouterr().err == "fitrank build: warning: something to know, said over two lines\n"
