@@ -510,11 +510,16 @@ def pagerank(
 
 
 def certified_bound(op: WalkOperator, y: np.ndarray) -> float:
-    """Certified ||x_true - y||_1 <= ||M y - (1 - alpha) v||_1 / (1 - alpha) for any (n,) y.
+    """Certified ||x_true - y||_1 <= min(||M y - (1 - alpha) v||_1 / (1 - alpha), 1 + ||y||_1) for any (n,) y.
 
-    Costs one sparse mat-vec. References: Langville & Meyer 2004 (||M^{-1}||_1 <= 1/(1-alpha)).
+    The second term holds because x_true is a probability vector (||x_true||_1
+    = 1): it is what remains when damping near 1 makes the first useless (770
+    against a true error of 9e-4 at damping 0.999999, seen on a chain graph).
+    Costs one sparse mat-vec. References: Langville & Meyer 2004 (||M^{-1}||_1
+    <= 1/(1-alpha)); the triangle inequality.
     """
-    return _l1(op.residual(np.asarray(y, dtype=np.float64))) / (1.0 - op.damping)
+    y = np.asarray(y, dtype=np.float64)
+    return min(_l1(op.residual(y)) / (1.0 - op.damping), 1.0 + _l1(y))
 
 
 # ----------------------------------------------------------------------------- gradient

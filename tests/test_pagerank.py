@@ -289,6 +289,22 @@ def test_adjoint_gradient_of_a_tiny_or_huge_df_dx_is_the_scaled_gradient(size):
     assert 0 < scaled_report.residual <= 1e-12 * np.abs(g * size).max() <= scaled_report.bound * 1e12
 
 
+def test_the_certified_bound_never_exceeds_what_a_probability_vector_allows():
+    # With damping near 1 the residual bound ||r||_1 / (1 - alpha) grows without limit, but the true
+    # solution is a probability vector, so ||x - y||_1 <= 1 + ||y||_1 (triangle inequality). Reference
+    # solution: scipy.sparse.linalg.spsolve of M x = (1 - alpha) v.
+    graph = random_typed_graph(31, n=30, num_relations=2)
+    weighting = make_weighting("scale", graph)
+    op = walk_operator(graph, weighting, weighting.theta0, damping=0.999999)
+    matrix = sp.identity(graph.n, format="csr") - op.damping * sp.csr_matrix(
+        np.column_stack([op.walk(e) for e in np.eye(graph.n)]))
+    x = spla.spsolve(matrix.tocsc(), (1 - op.damping) * op.teleport)
+    for y, cap in ((np.eye(graph.n)[0], 2.0), (2 * np.eye(graph.n)[0] - np.eye(graph.n)[1], 4.0)):
+        bound = certified_bound(op, y)
+        assert bound == cap and np.abs(x - y).sum() <= bound
+    assert certified_bound(op, x) < 1e-6  # near the solution the residual term is the smaller one
+
+
 def test_every_solver_converges_on_rank_sinks():
     # Closed 2-cycles give the walk the eigenvalues +1 and -1 (rank sinks): power iteration then
     # converges like alpha^k only. Reference: scipy.sparse.linalg.spsolve of M x = (1 - alpha) v.
