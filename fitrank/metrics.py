@@ -199,10 +199,29 @@ def pair_accuracy(scores: np.ndarray, pairs: Pairs, *, resolution: float = 0.0) 
         return float("nan")
     if not resolution >= 0.0:
         raise ValueError(f"resolution must be >= 0, got {resolution}")
-    difference = scores[pairs.preferred] - scores[pairs.other]
+    difference = _pair_differences(scores, pairs)
     hit = (difference > resolution).astype(np.float64) + 0.5 * (np.abs(difference) <= resolution)
     weight = np.asarray(pairs.weight, dtype=np.float64)
     return float(np.dot(weight, hit) / weight.sum())
+
+
+def tied_pairs(scores: np.ndarray, pairs: Pairs, resolution: float) -> int:
+    """How many of ``pairs`` ``scores`` (n,) cannot order: |s_preferred - s_other| <= ``resolution``."""
+    return int(np.count_nonzero(np.abs(_pair_differences(scores, pairs)) <= resolution))
+
+
+def misordered_pairs(reference: np.ndarray, scores: np.ndarray, pairs: Pairs, resolution: float) -> int:
+    """How many of ``pairs`` ``scores`` (n,) orders otherwise than ``reference`` (n,).
+
+    Only pairs that ``reference`` orders, by more than ``resolution``, count.
+    """
+    exact, approximate = _pair_differences(reference, pairs), _pair_differences(scores, pairs)
+    return int(np.count_nonzero((np.abs(exact) > resolution) & (np.sign(exact) != np.sign(approximate))))
+
+
+def _pair_differences(scores: np.ndarray, pairs: Pairs) -> np.ndarray:
+    """(Q,) s_preferred - s_other."""
+    return scores[pairs.preferred] - scores[pairs.other]
 
 
 def _vector(x, name: str) -> np.ndarray:

@@ -27,8 +27,8 @@ import pandas as pd
 from fitrank.atomic import link_or_copy, refuse_replacing_foreign, refuse_unwritable, staged_folder
 from fitrank.config import Config, effective_config, load_config, with_overrides
 from fitrank.errors import ConfigError, FitrankInputError, ModelMismatchError
-from fitrank.graph import SPLITS, Dataset, Pairs
-from fitrank.metrics import REFERENCE_TOL, agreement_with_solve, within_tolerance
+from fitrank.graph import SPLITS, Dataset
+from fitrank.metrics import REFERENCE_TOL, agreement_with_solve, misordered_pairs, tied_pairs, within_tolerance
 from fitrank.objective import ObjectiveSpec, calibrate, pair_summary
 from fitrank.pagerank import PageRankProblem, certified_bound, solve_operator
 from fitrank.reduced import ReducedModel, ReductionSettings
@@ -226,7 +226,7 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
     report = {"full": {name: pair_summary(x, pairs, spec, resolution=resolution) for name, pairs in splits.items()},
               "solver": {"iterations": solved.report.iterations, "bound": solved.report.bound,
                          "method": solved.report.method},
-              "train_pairs_tied": _tied(x, splits["train"], resolution)}
+              "train_pairs_tied": tied_pairs(x, splits["train"], resolution)}
     if model is not None:
         y = model.vector(theta)
         k = min(config.check.top_k, x.size)  # the nodes compared: all of them on a graph smaller than top_k
@@ -239,7 +239,7 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
             "l1_error": float(np.abs(x - y).sum()),
             # training pairs the reduced vector orders otherwise than the full one: gaps within the
             # model's error, which cannot steer reduced-space training
-            "train_pairs_misordered": _misordered(x, y, splits["train"], resolution),
+            "train_pairs_misordered": misordered_pairs(x, y, splits["train"], resolution),
             "certified_bound": certified_bound(op, y),
             "passed": within_tolerance(x, tau, l1, k=k, tau_min=config.check.tau_min, l1_max=config.check.l1_max,
                                        x_bound=solved.report.bound),
@@ -248,17 +248,6 @@ def full_check(problem: PageRankProblem, dataset: Dataset, theta: np.ndarray, co
         report["passed"] = True
     report["seconds"] = time.perf_counter() - start
     return report, x
-
-
-def _tied(x: np.ndarray, pairs: Pairs, resolution: float) -> int:
-    """How many of ``pairs`` have |x_preferred - x_other| <= ``resolution``."""
-    return int(np.count_nonzero(np.abs(x[pairs.preferred] - x[pairs.other]) <= resolution))
-
-
-def _misordered(x: np.ndarray, y: np.ndarray, pairs: Pairs, resolution: float) -> int:
-    """How many of ``pairs`` ``y`` orders otherwise than ``x`` (x's gaps beyond ``resolution`` only)."""
-    exact, reduced = x[pairs.preferred] - x[pairs.other], y[pairs.preferred] - y[pairs.other]
-    return int(np.count_nonzero((np.abs(exact) > resolution) & (np.sign(exact) != np.sign(reduced))))
 
 
 def fit(config: Config | str | Path, *, overrides=(), out: str | Path | None = None, write: bool = True,
@@ -500,7 +489,8 @@ def summary_lines(result: FitResult) -> list[str]:
         if round_record["stopped_because"] == "non_finite":
             lines.append(f"note: training round {round_record['round']} stopped after {round_record['steps']} step(s): "
                          "the objective or its gradient was not finite there (the pair losses overflow when "
-                         "training.temperature is tiny or pair weights are extreme); the parameters are the last finite ones")
+                         "training.temperature is tiny or pair weights are extreme); the parameters are the last "
+                         "finite ones")
     tied, train_pairs = record["check"].get("train_pairs_tied"), full["train"]["pairs"]
     if tied and train_pairs and tied >= 0.05 * train_pairs:
         lines.append(f"note: {tied} of {train_pairs} training pairs differ by less than the full solve's certified "

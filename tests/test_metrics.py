@@ -10,7 +10,7 @@ from scipy import stats
 
 from fitrank import metrics
 from fitrank.graph import Pairs
-from fitrank.metrics import kendall_tau_topk, l1_topk, pair_accuracy, top_k
+from fitrank.metrics import kendall_tau_topk, l1_topk, misordered_pairs, pair_accuracy, tied_pairs, top_k
 
 
 def _pairs(preferred, other, weight=None):
@@ -189,3 +189,11 @@ def test_pair_accuracy_with_a_resolution_matches_a_loop(values, seed, resolution
 
 def test_pair_accuracy_of_no_pairs_is_nan():
     assert math.isnan(pair_accuracy(np.ones(3), _pairs([], [])))
+
+
+def test_misordered_pairs_are_counted_beyond_the_resolution_only():
+    x, y = np.array([3.0, 2.0, 1.0]), np.array([3.0, 1.0, 2.0])
+    pairs = Pairs(np.array([0, 1, 0]), np.array([1, 2, 2]), np.ones(3), np.zeros(3, dtype=np.int8))
+    assert misordered_pairs(x, y, pairs, resolution=0.0) == 1  # only (1, 2) changes sign
+    assert misordered_pairs(x, y, pairs, resolution=1.5) == 0  # its gap of 1 is within the resolution
+    assert tied_pairs(x, pairs, resolution=1.0) == 2 and tied_pairs(x, pairs, resolution=0.5) == 0

@@ -8,8 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from fitrank.graph import Pairs
-from fitrank.pipeline import _misordered, _tied, fit, summary_lines
+from fitrank.pipeline import fit, summary_lines
 
 FAST = ["reduction.samples=8", "training.steps=10", "check.enrich_rounds=1", "output.plots=false"]
 
@@ -118,14 +117,6 @@ def test_the_summary_says_when_training_pairs_are_ties_of_the_full_solve(tmp_pat
     note = [line for line in summary_lines(result) if "count as ties" in line]
     assert note == ["note: 12 of 14 training pairs differ by less than the full solve's certified error at the "
                     "learned parameters: they count as ties, and no solve can order them there"]
-
-
-def test_misordered_pairs_are_counted_beyond_the_resolution_only():
-    x, y = np.array([3.0, 2.0, 1.0]), np.array([3.0, 1.0, 2.0])
-    pairs = Pairs(np.array([0, 1, 0]), np.array([1, 2, 2]), np.ones(3), np.zeros(3, dtype=np.int8))
-    assert _misordered(x, y, pairs, resolution=0.0) == 1  # only (1, 2) changes sign
-    assert _misordered(x, y, pairs, resolution=1.5) == 0  # its gap of 1 is within the resolution
-    assert _tied(x, pairs, resolution=1.0) == 2 and _tied(x, pairs, resolution=0.5) == 0
 
 
 @pytest.mark.parametrize("valid, kept", [("bo,cy", True), ("cy,bo", False)])

@@ -39,14 +39,12 @@ SOURCE = Path(__file__).with_name("kernels.cc")
 SWITCH = "FITRANK_NATIVE"
 """Environment variable: ``0`` keeps every online solve on XLA's code."""
 
-_TARGETS = {
-    "fitrank_constrained_least_squares": "FitrankConstrainedLeastSquares",
-}
+_TARGET = "fitrank_constrained_least_squares"  # the name XLA calls kernels.cc's FitrankConstrainedLeastSquares by
 _switched_off = False
 
 
 def library_path() -> Path:
-    """Where the compiled kernels of this source and this jaxlib live (it may not exist yet)."""
+    """Where the compiled kernel of this source and this jaxlib lives (it may not exist yet)."""
     digest = hashlib.sha256(SOURCE.read_bytes() + jaxlib.__version__.encode()).hexdigest()[:12]
     return SOURCE.with_name(f"_kernels-{digest}.so")
 
@@ -96,8 +94,7 @@ def _loaded() -> bool:
     library.fitrank_set_routines.argtypes = [ctypes.c_void_p] * 4
     library.fitrank_set_routines(*(_routine(module, name) for module, name in (
         (blas, "dsyrk"), (blas, "dgemv"), (lapack, "dpotrf"), (lapack, "dpotrs"))))
-    for target, symbol in _TARGETS.items():
-        jax.ffi.register_ffi_target(target, jax.ffi.pycapsule(getattr(library, symbol)), platform="cpu")
+    jax.ffi.register_ffi_target(_TARGET, jax.ffi.pycapsule(library.FitrankConstrainedLeastSquares), platform="cpu")
     return True
 
 
@@ -113,7 +110,7 @@ def _routine(module, name: str) -> int:
 
 
 def available() -> bool:
-    """True when the online solves being traced now will use the native kernels (CPU only)."""
+    """True when the online solves being traced now will use the native kernel (CPU only)."""
     return not _switched_off and jax.default_backend() == "cpu" and _loaded()
 
 
@@ -143,7 +140,7 @@ def constrained_least_squares_parts(matrix, rhs, sums):
     system = jnp.concatenate([jnp.concatenate([matrix, rhs[:, None]], axis=1),
                               jnp.concatenate([sums, jnp.zeros(1, sums.dtype)])[None, :]], axis=0)
     vector, square = jax.ShapeDtypeStruct((k,), jnp.float64), jax.ShapeDtypeStruct((k, k), jnp.float64)
-    call = jax.ffi.ffi_call("fitrank_constrained_least_squares",
+    call = jax.ffi.ffi_call(_TARGET,
                             (vector, square, square, vector, vector, vector, jax.ShapeDtypeStruct((), jnp.float64)),
                             vmap_method="sequential")
     c, normal, factor, scale, u, z, multiplier = call(system)
