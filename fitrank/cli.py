@@ -121,8 +121,9 @@ def _cmd_build(args: argparse.Namespace) -> int:
     if model.method == "interpolation":
         print(f"rows chosen: {info['rows']}, edges touched: {info['edges_touched']} "
               f"({info['edges_touched_fraction']:.1%} of {problem.graph.num_edges})")
-        print("online least squares: " + ("native BLAS/LAPACK kernel" if native.available() else
-                                          "XLA operations (the native kernel is not built: python -m fitrank.native)"))
+        transition = ", feature transition: native kernel" if problem.weighting.kind == "features" else ""
+        print("online least squares: " + (f"native BLAS/LAPACK kernel{transition}" if native.available() else
+                                          "XLA operations (the native kernels are not built: python -m fitrank.native)"))
     if held_out is not None:
         print(_held_out_line(held_out, check))
     print(f"offline time: {time.perf_counter() - start:.1f} s "

@@ -124,6 +124,10 @@ class RegionalModel:
             def values(theta, arrays):
                 region = nearest_centre(coordinates(theta), arrays["centres"], xp=jnp)
                 local = jax.tree_util.tree_map(lambda leaf: leaf[region], arrays["stacked"])
+                if "packed" in local.get("tables", {}):
+                    # whole, with the region: the native kernel that reads it picks the region's rows
+                    # itself, where a slicing kernel beside the chain sent XLA to its thread pool
+                    local["tables"].update(packed=arrays["stacked"]["tables"]["packed"], part=region)
                 if "basis_sources" in arrays:
                     local["basis_sources"] = arrays["basis_sources"]
                 return jax.lax.switch(region, readouts, solve(theta, local), arrays["readout"])
@@ -179,7 +183,11 @@ def stack_regions(parts, table_fill: dict) -> dict:
 
     def pad(leaf, shape, fill):
         leaf = np.asarray(leaf)
-        return np.pad(leaf, [(0, size - now) for size, now in zip(shape, leaf.shape)], constant_values=fill)
+        widths = [(0, size - now) for size, now in zip(shape, leaf.shape)]
+        if np.ndim(fill) == 0:
+            return np.pad(leaf, widths, constant_values=fill)
+        # one fill per row (a table that packs several columns as rows)
+        return np.stack([np.pad(row, widths[1:], constant_values=value) for row, value in zip(leaf, fill)])
 
     def common(leaves):
         return tuple(max(sizes) for sizes in zip(*(np.shape(leaf) for leaf in leaves)))

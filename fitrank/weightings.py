@@ -36,6 +36,7 @@ import jax.numpy as jnp
 import numpy as np
 from scipy.stats import qmc
 
+from fitrank import native
 from fitrank.errors import FitrankInputError
 from fitrank.graph import Graph
 
@@ -327,13 +328,16 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         lookup = np.full(graph.num_edges, -1, dtype=np.int64)
         lookup[out_ids] = np.arange(out_ids.size)
         target = lookup[edge_ids]
-        return {
+        local = {
             **{name: values[..., out_ids] for name, values in shifted.items()},
             "slot": out_slot,
             "has_out": np.ones(sources.size, dtype=bool),
             "target": target,
             "target_slot": out_slot[target],
         }
+        # the same columns as one array, the native kernel's one operand (fitrank.native.feature_weights)
+        local["packed"] = np.vstack([local["log_base"], local["feat_hi"], local["feat_lo"], out_slot.astype(np.float64)])
+        return local
 
     f = standard.shape[1]
     bound = 0.7 / np.sqrt(f) if bound is None else float(bound)
@@ -357,7 +361,7 @@ def feature_loglinear(graph: Graph, bound: float | None = None) -> Weighting:
         # a padded out-edge has weight exp(-inf) = 0 and normalises nothing; a padded source has no
         # out-edge; a padded in-edge reads the first real out-edge (finite, and never used)
         table_fill={"log_base": -np.inf, "feat_hi": 0.0, "feat_lo": 0.0, "slot": 0, "has_out": False,
-                    "target": 0, "target_slot": 0},
+                    "target": 0, "target_slot": 0, "packed": np.concatenate([[-np.inf], np.zeros(2 * f + 1)])},
     )
 
 
@@ -498,6 +502,9 @@ _SMALLEST_TOTAL = 1e-290
 
 
 def _feature_transition(theta, tables, xp=jnp):
+    if xp is jnp and "packed" in tables and jnp.result_type(theta) == jnp.float64 and native.available():
+        # local tables: 0.4-0.5 of XLA's time for this step (exp one value at a time, then a scatter)
+        return _native_feature_weights(theta, tables)[tables["target"]]
     score = tables["log_base"]
     for f in range(tables["feat_hi"].shape[0]):  # a few fused row updates; XLA's (f,) @ (f, E) dot was slower
         score = score + theta[f] * xp.where(theta[f] > 0, tables["feat_hi"][f], tables["feat_lo"][f])
@@ -509,6 +516,36 @@ def _feature_transition(theta, tables, xp=jnp):
     if xp is jnp:
         return jax.lax.cond(fits, _normalised_weights, _feature_transition_rescaled, weight, total, score, tables)
     return (_normalised_weights if fits else _feature_transition_rescaled)(weight, total, score, tables, xp)
+
+
+@jax.custom_jvp
+def _native_feature_weights(theta, tables):
+    """q (E,): every table edge's weight over its source's total, by the native kernel.
+
+    The tables are constants (the weighting's data): only theta has a derivative.
+    """
+    packed = tables["packed"]
+    if packed.ndim == 2:
+        packed, part = packed[None], 0
+    else:  # a regional model's stacked tables, whole, and its region (fitrank.regions)
+        part = tables["part"]
+    return native.feature_weights(theta, packed, part, tables["has_out"].shape[0])
+
+
+@_native_feature_weights.defjvp
+def _native_feature_weights_jvp(primals, tangents):
+    """dq_e = q_e (ds_e - sum_{e' out of j} q_e' ds_e'), ds_e = dtheta . phi_e (j the source of e).
+
+    The tables' features are shifted per source (``feat_hi`` and ``feat_lo``
+    differ by a constant per source), and such shifts cancel in the
+    difference: ``feat_hi`` serves for every sign of theta.
+    """
+    theta, tables = primals
+    d_theta, _ = tangents
+    weights = _native_feature_weights(theta, tables)
+    d_score = d_theta @ tables["feat_hi"]
+    mean = jax.ops.segment_sum(weights * d_score, tables["slot"], num_segments=tables["has_out"].shape[0])
+    return weights, weights * (d_score - mean[tables["slot"]])
 
 
 def _normalised_weights(weight, total, score, tables, xp=jnp):

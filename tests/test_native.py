@@ -12,8 +12,10 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 
-from fitrank import interpolation, native
+from fitrank import interpolation, native, weightings
 from fitrank.interpolation import constrained_least_squares
+from fitrank.reduced import ReductionSettings
+from fitrank.regions import build_model
 
 from tests.test_reduced import _model, _problem
 
@@ -102,6 +104,78 @@ def test_a_scorer_gives_the_same_values_and_gradients_with_and_without_the_kerne
         want = jax.jit(jax.value_and_grad(lambda t, a: total(t, a) + 0.0))(theta, scorer.arrays)
     np.testing.assert_allclose(float(got[0]), float(want[0]), rtol=1e-12)
     np.testing.assert_allclose(np.asarray(got[1]), np.asarray(want[1]), rtol=1e-9, atol=1e-14)
+
+
+def _softmax_per_source(problem, theta, edge_ids):
+    """p_e = b_e exp(theta . phi_e) / sum over the source's out-edges, in numpy from the graph itself.
+
+    Independent of the weighting's shifted tables: standardised features as the
+    weighting's docstring defines them, and each source's log-sum-exp shifted by
+    its own maximum (common practice for a stable softmax).
+    """
+    graph, weighting = problem.graph, problem.weighting
+    standard = (graph.features - weighting.feature_center) / weighting.feature_scale
+    score = np.log(graph.base) + standard @ theta
+    peak = np.full(graph.n, -np.inf)
+    np.maximum.at(peak, graph.src, score)
+    weight = np.exp(score - peak[graph.src])
+    total = np.bincount(graph.src, weights=weight, minlength=graph.n)
+    return (weight / total[graph.src])[edge_ids]
+
+
+@needs_native
+@pytest.mark.parametrize("scale", [0.0, 0.3, 3.0, 400.0])  # 400: scores below exp's range, the rescaled branch
+def test_native_feature_weights_equal_a_numpy_softmax_and_the_xla_code(scale):
+    problem = _problem("features")
+    weighting = problem.weighting
+    rng = np.random.default_rng(int(scale * 10) + 1)
+    edge_ids = np.sort(rng.choice(problem.graph.num_edges, 300, replace=False))
+    tables = jax.device_put(weighting.local_tables(edge_ids))
+    theta = jnp.asarray(rng.normal(size=weighting.num_params) * scale)
+    got = np.asarray(jax.jit(weighting.transition)(theta, tables))
+    want = _softmax_per_source(problem, np.asarray(theta), edge_ids)
+    # at scale 400 the scores reach -1e3: their rounding (1e-16 of that) is the relative error of exp
+    np.testing.assert_allclose(got, want, rtol=1e-12 if scale < 100 else 1e-10, atol=1e-300)
+    xla = jax.jit(lambda t, x: weightings._feature_transition(t, {k: v for k, v in x.items() if k != "packed"}))
+    np.testing.assert_allclose(got, np.asarray(xla(theta, tables)), rtol=1e-12 if scale < 100 else 1e-10, atol=1e-300)
+
+
+@needs_native
+def test_native_feature_weights_derivative_equals_autodiff_of_the_xla_code():
+    problem = _problem("features")
+    weighting = problem.weighting
+    rng = np.random.default_rng(5)
+    tables = jax.device_put(weighting.local_tables(rng.choice(problem.graph.num_edges, 200, replace=False)))
+    unpacked = {k: v for k, v in tables.items() if k != "packed"}
+    for theta in (weighting.sample(1, seed=3)[0], -2.0 * weighting.upper):
+        got_forward = jax.jacfwd(weighting.transition)(jnp.asarray(theta), tables)
+        got_reverse = jax.jacrev(weighting.transition)(jnp.asarray(theta), tables)
+        want = jax.jacfwd(weighting.transition)(jnp.asarray(theta), unpacked)  # the XLA code, differentiated by JAX
+        np.testing.assert_allclose(np.asarray(got_forward), np.asarray(want), rtol=1e-10, atol=1e-14)
+        np.testing.assert_allclose(np.asarray(got_reverse), np.asarray(want), rtol=1e-10, atol=1e-14)
+
+
+@needs_native
+def test_a_regional_feature_model_gives_the_same_values_and_gradients_with_and_without_the_kernels():
+    # its stacked, padded tables reach the kernel whole, with the region's index
+    problem = _problem("features")
+    model = build_model(problem, ReductionSettings(method="interpolation", samples=48, regions=3, rank=8),
+                        progress=False)
+    scorer = model.scorer(np.arange(0, problem.graph.n, 7))
+    thetas = problem.weighting.sample(6, seed=91)
+    assert len({model.region_of(theta) for theta in thetas}) >= 2
+
+    def total(t, arrays):
+        return jnp.sum(jnp.sqrt(scorer.fn(t, arrays)))
+
+    got_fn = jax.jit(jax.value_and_grad(total))
+    with native.switched_off():
+        want_fn = jax.jit(jax.value_and_grad(lambda t, a: total(t, a) + 0.0))
+        want_fn(jnp.asarray(thetas[0]), scorer.arrays)  # traced here, without the kernels
+    for theta in thetas:
+        got, want = got_fn(jnp.asarray(theta), scorer.arrays), want_fn(jnp.asarray(theta), scorer.arrays)
+        np.testing.assert_allclose(float(got[0]), float(want[0]), rtol=1e-12)
+        np.testing.assert_allclose(np.asarray(got[1]), np.asarray(want[1]), rtol=1e-9, atol=1e-14)
 
 
 def test_a_changed_source_gets_another_library_file(tmp_path, monkeypatch):

@@ -1,4 +1,4 @@
-"""A native online kernel: the constrained least squares in BLAS and LAPACK, through XLA's FFI.
+"""Native online kernels, through XLA's FFI: the constrained least squares and the feature transition.
 
 The interpolation's online solve ends in a small equality-constrained least
 squares (:func:`fitrank.interpolation.constrained_least_squares`). In XLA's
@@ -8,16 +8,22 @@ k = 100, r = 200 they took about 340 us of a 650 us evaluation under XLA's
 profiler; ``kernels.cc`` does the same steps in one call of about 150 us,
 through the BLAS and LAPACK routines SciPy exports (``scipy.linalg.cython_blas``
 and ``cython_lapack``): nothing is linked at build time, and the factor comes
-from the same LAPACK routine JAX's own Cholesky calls. The function here is a
-pure JAX function (jit, vmap, and the caller's custom derivative work as
-before); only its values come from the library.
+from the same LAPACK routine JAX's own Cholesky calls.
+
+The feature weighting's local transition (:func:`feature_weights`: an exp per
+out-edge of the rows' in-neighbours, a sum per source, a division) is the
+second: XLA computes a float64 exp one value at a time (about 5.5 ns), the
+kernel's vectorised exp about 1 ns.
+
+The functions here are pure JAX functions (jit, vmap, and the callers' custom
+derivatives work as before); only their values come from the library.
 
 The library is compiled by ``python -m fitrank.native`` (``make`` runs it after
-installing). Its file name carries a hash of the source and of the jaxlib
-version, so a stale build is never loaded. Without it (no C++ compiler, a JAX
-without ``jax.ffi``, or the environment variable ``FITRANK_NATIVE=0``) the
-solve runs in XLA's operations, which compute the same numbers to rounding.
-"""
+installing). Its file name carries a hash of the source, the compiler flags and
+the jaxlib version, so a stale build is never loaded. Without it (no C++
+compiler, a JAX without ``jax.ffi``, or the environment variable
+``FITRANK_NATIVE=0``) the same steps run in XLA's operations, which compute the
+same numbers to rounding."""
 
 from __future__ import annotations
 
@@ -34,18 +40,25 @@ from pathlib import Path
 import jax
 import jax.numpy as jnp
 import jaxlib
+import numpy as np
 
 SOURCE = Path(__file__).with_name("kernels.cc")
 SWITCH = "FITRANK_NATIVE"
 """Environment variable: ``0`` keeps every online solve on XLA's code."""
 
-_TARGET = "fitrank_constrained_least_squares"  # the name XLA calls kernels.cc's FitrankConstrainedLeastSquares by
+# the names XLA calls kernels.cc's handlers by
+_TARGETS = {"fitrank_constrained_least_squares": "FitrankConstrainedLeastSquares",
+            "fitrank_feature_weights": "FitrankFeatureWeights"}
+# -O3 without -march: the library may run on another CPU than the one that built it (kernels.cc picks
+# wider vector code at run time); no trapping math, so that the compiler may vectorise loops with selects
+_FLAGS = ("-O3", "-std=c++17", "-shared", "-fPIC", "-w", "-fno-trapping-math")
 _switched_off = False
 
 
 def library_path() -> Path:
     """Where the compiled kernel of this source and this jaxlib lives (it may not exist yet)."""
-    digest = hashlib.sha256(SOURCE.read_bytes() + jaxlib.__version__.encode()).hexdigest()[:12]
+    recipe = SOURCE.read_bytes() + " ".join(_FLAGS).encode() + jaxlib.__version__.encode()
+    digest = hashlib.sha256(recipe).hexdigest()[:12]
     return SOURCE.with_name(f"_kernels-{digest}.so")
 
 
@@ -66,9 +79,7 @@ def build(compiler: str | None = None) -> Path:
     target = library_path()
     with tempfile.TemporaryDirectory(dir=target.parent) as folder:
         temp = Path(folder) / target.name
-        # -O3 without -march: the library may run on another CPU than the one that built it
-        done = subprocess.run([compiler, "-O3", "-std=c++17", "-shared", "-fPIC", "-w",
-                               f"-I{jax.ffi.include_dir()}", str(SOURCE), "-o", str(temp)],
+        done = subprocess.run([compiler, *_FLAGS, f"-I{jax.ffi.include_dir()}", str(SOURCE), "-o", str(temp)],
                               capture_output=True, text=True)
         if done.returncode != 0:
             raise RuntimeError(f"{compiler} could not build {SOURCE.name}:\n{done.stderr.strip()}")
@@ -94,7 +105,8 @@ def _loaded() -> bool:
     library.fitrank_set_routines.argtypes = [ctypes.c_void_p] * 4
     library.fitrank_set_routines(*(_routine(module, name) for module, name in (
         (blas, "dsyrk"), (blas, "dgemv"), (lapack, "dpotrf"), (lapack, "dpotrs"))))
-    jax.ffi.register_ffi_target(_TARGET, jax.ffi.pycapsule(library.FitrankConstrainedLeastSquares), platform="cpu")
+    for target, symbol in _TARGETS.items():
+        jax.ffi.register_ffi_target(target, jax.ffi.pycapsule(getattr(library, symbol)), platform="cpu")
     return True
 
 
@@ -110,7 +122,7 @@ def _routine(module, name: str) -> int:
 
 
 def available() -> bool:
-    """True when the online solves being traced now will use the native kernel (CPU only)."""
+    """True when the online steps being traced now will use the native kernels (CPU only)."""
     return not _switched_off and jax.default_backend() == "cpu" and _loaded()
 
 
@@ -140,8 +152,31 @@ def constrained_least_squares_parts(matrix, rhs, sums):
     system = jnp.concatenate([jnp.concatenate([matrix, rhs[:, None]], axis=1),
                               jnp.concatenate([sums, jnp.zeros(1, sums.dtype)])[None, :]], axis=0)
     vector, square = jax.ShapeDtypeStruct((k,), jnp.float64), jax.ShapeDtypeStruct((k, k), jnp.float64)
-    call = jax.ffi.ffi_call(_TARGET,
+    call = jax.ffi.ffi_call("fitrank_constrained_least_squares",
                             (vector, square, square, vector, vector, vector, jax.ShapeDtypeStruct((), jnp.float64)),
                             vmap_method="sequential")
     c, normal, factor, scale, u, z, multiplier = call(system)
     return c, (normal, (factor, False), scale, u, z, multiplier)
+
+
+def feature_weights(theta, tables, part, sources: int):
+    """The feature weighting's normalised out-edge weights q (E,), in one call (float64).
+
+    The native twin of the exp, per-source sum and division in
+    ``fitrank.weightings._feature_transition`` (the same numbers to rounding;
+    values only: the caller writes the derivative).
+
+    Args:
+      theta: (f,) parameters.
+      tables: (R, 2 f + 2, E) R stacked tables (a regional model's regions),
+        each with rows log_base, the per-source shifted features hi (f rows)
+        and lo (f rows), and each edge's source slot (as float64).
+      part: () index of the table to use.
+      sources: S, the number of source slots.
+
+    Returns:
+      (E,) q_e = exp(s_e) / sum over the out-edges e' of e's source of exp(s_e').
+    """
+    call = jax.ffi.ffi_call("fitrank_feature_weights", jax.ShapeDtypeStruct(tables.shape[2:], jnp.float64),
+                            vmap_method="sequential")
+    return call(theta, tables, jnp.asarray(part, jnp.int64), sources=np.int64(sources))
