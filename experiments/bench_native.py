@@ -1,9 +1,9 @@
-"""The native constrained least squares (fitrank.native) against XLA's operations, side by side.
+"""The native kernels (fitrank.native: the constrained least squares, the feature transition) against XLA's operations, side by side.
 
 Builds reduced models on a generated graph (about 2M edges by default; both
 interpolated weightings, global k = 50 and 100 with r = 2k rows, and a
 12-region k = 50 model of each), saves them, and starts two worker processes
-that load the same files: one with the native kernel, one with
+that load the same files: one with the native kernels, one with
 ``FITRANK_NATIVE=0``. The workers take turns, a round each, so a slow spell of
 this shared machine hits both alike; a round is a warm pass and three timed
 passes over 20 fresh points of every model's scorer (2,000 nodes). It prints
