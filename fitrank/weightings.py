@@ -497,8 +497,10 @@ def _per_source_shifted(log_base: np.ndarray, standard: np.ndarray, src: np.ndar
     }
 
 
-# below this, a source's shifted total would lose digits to subnormals: the bound was too loose
-_SMALLEST_TOTAL = 1e-290
+# below this, a source's shifted total is too small: the bound was too loose. Not only its digits
+# (subnormals below 1e-308) but its derivative: JAX's quotient rule divides by the total squared,
+# which underflowed to 0 for totals near 1e-290 and made the gradient NaN at theta far out
+_SMALLEST_TOTAL = 1e-140
 
 
 def _feature_transition(theta, tables, xp=jnp):

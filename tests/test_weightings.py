@@ -446,6 +446,27 @@ def test_feature_transition_is_each_sources_softmax_however_far_theta_goes(magni
                                expected[edge_ids], rtol=rtol, atol=1e-300)
 
 
+@pytest.mark.parametrize("magnitude", [0.3, 30.0, 250.0, 300.0, 3000.0])
+def test_feature_transition_derivative_is_finite_and_matches_central_differences(magnitude):
+    # At 250 and 300 the smallest total of the fast path is 8e-197 and 7e-236: finite, but its
+    # square (in the quotient rule) underflowed to 0, and the derivative was NaN until the fast
+    # path required totals of at least 1e-140. Reference: central differences of the NumPy
+    # evaluation (common practice), step 1e-5, truncation error about 1e-9 here.
+    graph = random_typed_graph(7, n=40, num_features=2)
+    weighting = make_weighting("features", graph)
+    theta = magnitude * np.array([1.0, -0.6])
+    tables = jax.device_put(weighting.tables)
+    forward = np.asarray(jax.jacfwd(weighting.transition)(jnp.asarray(theta), tables))
+    reverse = np.asarray(jax.jacrev(weighting.transition)(jnp.asarray(theta), tables))
+    step = 1e-5
+    central = np.stack([(weighting.transition(theta + step * unit, weighting.tables, xp=np)
+                         - weighting.transition(theta - step * unit, weighting.tables, xp=np)) / (2 * step)
+                        for unit in np.eye(2)], axis=1)
+    assert np.all(np.isfinite(forward)) and np.all(np.isfinite(reverse))
+    np.testing.assert_allclose(forward, central, rtol=1e-5, atol=1e-7)
+    np.testing.assert_allclose(reverse, forward, rtol=1e-12, atol=1e-15)
+
+
 def test_feature_transition_keeps_the_fast_path_beside_dangling_nodes(monkeypatch):
     # Nodes without out-edges have a total of 0: that must not send every evaluation of the
     # full tables to the exact per-source maximum, which is meant for theta far out of the box.

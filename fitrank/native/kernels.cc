@@ -184,8 +184,9 @@ void ExpNonPositive(double* v, int64_t n) { ExpNonPositivePortable(v, n); }
 #endif
 #undef FITRANK_EXP_LOOP
 
-// below this, a source's total would lose digits to subnormals (as _SMALLEST_TOTAL in weightings.py)
-constexpr double kSmallestTotal = 1e-290;
+// below this a source's total counts as too small, as _SMALLEST_TOTAL in weightings.py (the same
+// branch, so that both paths compute alike)
+constexpr double kSmallestTotal = 1e-140;
 
 // q <- the scores s_e = log_base_e + sum_f theta_f (hi_fe if theta_f > 0 else lo_fe), less
 // ``shift`` (one value per source slot) when given
