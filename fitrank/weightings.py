@@ -458,9 +458,34 @@ def _mixture_transition(theta, tables, xp=jnp):
 
 
 def _scale_transition(theta, tables, xp=jnp):
+    # Every source with out-edges has a relation of out-weight 1 (the rows are scaled so), so its
+    # out-weight is at least the smallest scale: while that is >= _SMALLEST_TOTAL (a spread of
+    # theta up to 322) neither the total nor its square in the derivative underflows.
+    fits = xp.min(theta) - xp.max(theta) >= np.log(_SMALLEST_TOTAL)
+    if xp is jnp:
+        return jax.lax.cond(fits, _scale_transition_shared, _scale_transition_per_source, theta, tables)
+    return (_scale_transition_shared if fits else _scale_transition_per_source)(theta, tables, xp)
+
+
+def _scale_transition_shared(theta, tables, xp=jnp):
+    """p with theta shifted by its maximum, one shift for every source (cheap: R exps)."""
     scale = xp.exp(theta - _constant(xp.max(theta), xp))
     out = tables["out_weight"] @ scale
     return tables["base"] * scale[tables["rel"]] / out[tables["slot"]]
+
+
+def _scale_transition_per_source(theta, tables, xp=jnp):
+    """p with theta shifted by the largest theta among each source's relations: for spreads so wide
+    that one shared shift underflows a source's out-weight (S R exps)."""
+    present = tables["out_weight"] > 0
+    peak = xp.max(xp.where(present, theta[None, :], -np.inf), axis=1)
+    peak = _constant(xp.where(present.any(axis=1), peak, 0.0), xp)
+    # absent relations get exponent -inf, not theta - peak: exp of that may overflow, and even
+    # masked afterwards its infinite derivative would turn the gradient into NaN
+    scale = xp.exp(xp.where(present, theta[None, :] - peak[:, None], -np.inf))
+    out = xp.sum(tables["out_weight"] * scale, axis=1)
+    slot = tables["slot"]
+    return tables["base"] * xp.exp(theta[tables["rel"]] - peak[slot]) / out[slot]
 
 
 def _per_source_shifted(log_base: np.ndarray, standard: np.ndarray, src: np.ndarray, n: int) -> dict:

@@ -598,11 +598,19 @@ def test_a_non_finite_transition_is_refused_before_any_solve():
 
 
 def test_parameters_too_far_out_for_float64_are_named_as_the_cause_not_the_data():
-    # relation 1 at e^-2000 of relation 0 underflows to 0: a node whose out-edges are all of
-    # relation 1 then has a 0 / 0 walk, though its data are fine (its walk is finite at theta0)
+    # relation 1 at e^-2000 of relation 0: one shared shift of theta once underflowed the out-weight
+    # of node 1 (all its out-edges are of relation 1) to 0; each source's own shift keeps its walk
+    # exact: every node has one out-edge, so p = 1 and PageRank is uniform (by symmetry of the cycle)
     graph = build_graph(src=[0, 1, 2], dst=[1, 2, 0], n=3, relation=[0, 1, 0], relation_names=["a", "b"])
     weighting = make_weighting("scale", graph)
     with warnings.catch_warnings():
-        warnings.simplefilter("error")  # the one-line error only: no NumPy warning about the 0 / 0 first
+        warnings.simplefilter("error")
+        np.testing.assert_allclose(pagerank(graph, weighting, np.array([1000.0, -1000.0])).x, np.full(3, 1 / 3),
+                                   rtol=1e-12)
+    # a weighting whose weights do leave the float range there (finite at theta0) is named as the cause
+    overflowing = replace(weighting, transition=lambda theta, tables, xp=np: (
+        weighting.transition(theta, tables, xp) * np.exp(np.abs(theta).max() - 1.0)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the one-line error only: no NumPy warning about the overflow first
         with pytest.raises(FitrankInputError, match=r"largest \|theta\| = 1e\+03.*narrow weighting.bound"):
-            pagerank(graph, weighting, np.array([1000.0, -1000.0]))
+            pagerank(graph, overflowing, np.array([1000.0, -1000.0]))

@@ -467,6 +467,39 @@ def test_feature_transition_derivative_is_finite_and_matches_central_differences
     np.testing.assert_allclose(reverse, forward, rtol=1e-12, atol=1e-15)
 
 
+@pytest.mark.parametrize("spread", [1.0, 180.0, 372.0, 1000.0])
+def test_scale_transition_holds_however_wide_theta_spreads(spread):
+    # theta = (d, -d): one shared shift by max(theta) left exp(-2d) for the other relation. From
+    # d = 180 its square underflowed in the derivative (NaN gradient), at 372 the out-weights of
+    # sources with only that relation were subnormal (p off by 0.23) and from 400 they were 0 (NaN).
+    # Reference: each source's weights b_e exp(theta_rel(e)) over their sum, in logs shifted by the
+    # source's own maximum (common practice); derivatives against central differences.
+    graph = random_typed_graph(7, n=60)
+    weighting = make_weighting("scale", graph)
+    theta = np.zeros(weighting.num_params)
+    theta[:2] = spread, -spread
+    log_weight = np.log(graph.base) + theta[graph.relation]
+    peak = np.full(graph.n, -np.inf)
+    np.maximum.at(peak, graph.src, log_weight)
+    weight = np.exp(log_weight - peak[graph.src])
+    expected = weight / np.bincount(graph.src, weights=weight, minlength=graph.n)[graph.src]
+    tables = jax.device_put(weighting.tables)
+    rtol = max(1e-13, 1e-15 * spread)
+    np.testing.assert_allclose(weighting.transition(theta, weighting.tables, xp=np), expected, rtol=rtol, atol=1e-300)
+    np.testing.assert_allclose(np.asarray(jax.jit(weighting.transition)(jnp.asarray(theta), tables)), expected,
+                               rtol=rtol, atol=1e-300)
+    edge_ids = np.arange(0, graph.num_edges, 2)
+    np.testing.assert_allclose(np.asarray(weighting.transition(jnp.asarray(theta), weighting.local_tables(edge_ids))),
+                               expected[edge_ids], rtol=rtol, atol=1e-300)
+    forward = np.asarray(jax.jacfwd(weighting.transition)(jnp.asarray(theta), tables))
+    step = 1e-5
+    central = np.stack([(weighting.transition(theta + step * unit, weighting.tables, xp=np)
+                         - weighting.transition(theta - step * unit, weighting.tables, xp=np)) / (2 * step)
+                        for unit in np.eye(theta.size)], axis=1)
+    assert np.all(np.isfinite(forward))
+    np.testing.assert_allclose(forward, central, rtol=1e-5, atol=1e-8)
+
+
 def test_feature_transition_keeps_the_fast_path_beside_dangling_nodes(monkeypatch):
     # Nodes without out-edges have a total of 0: that must not send every evaluation of the
     # full tables to the exact per-source maximum, which is meant for theta far out of the box.
