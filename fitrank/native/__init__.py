@@ -56,7 +56,7 @@ _switched_off = False
 
 
 def library_path() -> Path:
-    """Where the compiled kernel of this source and this jaxlib lives (it may not exist yet)."""
+    """Where the library compiled from this source, with these flags, for this jaxlib lives (it may not exist yet)."""
     recipe = SOURCE.read_bytes() + " ".join(_FLAGS).encode() + jaxlib.__version__.encode()
     digest = hashlib.sha256(recipe).hexdigest()[:12]
     return SOURCE.with_name(f"_kernels-{digest}.so")

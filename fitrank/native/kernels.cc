@@ -188,19 +188,14 @@ void ExpNonPositive(double* v, int64_t n) { ExpNonPositivePortable(v, n); }
 // branch, so that both paths compute alike)
 constexpr double kSmallestTotal = 1e-140;
 
-// q <- the scores s_e = log_base_e + sum_f theta_f (hi_fe if theta_f > 0 else lo_fe), less
-// ``shift`` (one value per source slot) when given
-void Scores(const double* theta, int64_t features, const double* table, int64_t edges, const double* shift,
-            double* q) {
-  const double* slot = table + (2 * features + 1) * edges;
+// q <- the scores s_e = log_base_e + sum_f theta_f (hi_fe if theta_f > 0 else lo_fe)
+void Scores(const double* theta, int64_t features, const double* table, int64_t edges, double* q) {
   std::memcpy(q, table, sizeof(double) * edges);
   for (int64_t f = 0; f < features; ++f) {
     const double step = theta[f];
     const double* column = table + (1 + f + (step > 0.0 ? 0 : features)) * edges;
     for (int64_t e = 0; e < edges; ++e) q[e] += step * column[e];
   }
-  if (shift != nullptr)
-    for (int64_t e = 0; e < edges; ++e) q[e] -= shift[static_cast<int64_t>(slot[e])];
 }
 
 // A run of consecutive edges with one source slot.
@@ -258,7 +253,7 @@ ffi::Error FeatureWeights(F64 theta_in, F64 tables_in, S64 part_in, OutF64 weigh
   real.assign(sources, 0);
   for (const Run& run : runs)  // padding edges come in runs of their own, or after a source's real edges
     real[run.slot] |= table[run.start] > -std::numeric_limits<double>::infinity();
-  Scores(theta, features, table, edges, nullptr, q);
+  Scores(theta, features, table, edges, q);
   for (int attempt = 0; attempt < 2; ++attempt) {
     ExpNonPositive(q, edges);
     total.assign(sources, 0.0);
@@ -267,11 +262,15 @@ ffi::Error FeatureWeights(F64 theta_in, F64 tables_in, S64 part_in, OutF64 weigh
     for (int64_t j = 0; j < sources; ++j) fits = fits && (!real[j] || total[j] >= kSmallestTotal);
     if (fits || attempt == 1) break;
     // theta so far out that the bound underflows: shift each source by its largest score
-    Scores(theta, features, table, edges, nullptr, q);
+    // (the exp overwrote the scores, so they are formed once more)
+    Scores(theta, features, table, edges, q);
     std::vector<double> peak(sources, -std::numeric_limits<double>::infinity());
-    for (int64_t e = 0; e < edges; ++e) peak[static_cast<int64_t>(slot[e])] = std::max(peak[static_cast<int64_t>(slot[e])], q[e]);
-    for (double& value : peak) value = std::isfinite(value) ? value : 0.0;
-    Scores(theta, features, table, edges, peak.data(), q);
+    for (const Run& run : runs)
+      for (int64_t e = run.start; e < run.end; ++e) peak[run.slot] = std::max(peak[run.slot], q[e]);
+    for (const Run& run : runs) {
+      const double shift = std::isfinite(peak[run.slot]) ? peak[run.slot] : 0.0;
+      for (int64_t e = run.start; e < run.end; ++e) q[e] -= shift;
+    }
   }
   for (const Run& run : runs) {
     const double inverse = total[run.slot] > 0.0 ? 1.0 / total[run.slot] : 0.0;
