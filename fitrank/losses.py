@@ -29,7 +29,9 @@ from typing import Callable
 import jax
 import jax.numpy as jnp
 
-jax.config.update("jax_enable_x64", True)
+from fitrank.jax_settings import apply_jax_settings
+
+apply_jax_settings()
 
 
 def sigmoid_loss(z, temperature):

@@ -39,8 +39,9 @@ from scipy.stats import qmc
 from fitrank import native
 from fitrank.errors import FitrankInputError
 from fitrank.graph import Graph
+from fitrank.jax_settings import apply_jax_settings
 
-jax.config.update("jax_enable_x64", True)
+apply_jax_settings()
 
 KINDS = ("mixture", "scale", "features")
 

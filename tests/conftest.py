@@ -1,7 +1,8 @@
-"""Test-wide set-up: JAX in float64 on the CPU, and a Hypothesis profile sized for CI.
+"""Test-wide set-up: fitrank's JAX settings on the CPU, and a Hypothesis profile sized for CI.
 
-x64 must be switched on before any test module builds a JAX array, so it is done
-here, at import time, before pytest collects anything.
+fitrank's JAX settings (float64, synchronous dispatch) must be in place before
+any test module builds a JAX array, so they are applied here, at import time,
+before pytest collects anything.
 """
 
 import os
@@ -11,9 +12,9 @@ os.environ.setdefault("JAX_PLATFORMS", "cpu")
 # for the whole suite (tests/test_cli.py checks the cache in subprocesses of its own).
 os.environ.setdefault("FITRANK_COMPILE_CACHE", "off")
 
-import jax  # noqa: E402
+from fitrank.jax_settings import apply_jax_settings  # noqa: E402
 
-jax.config.update("jax_enable_x64", True)
+apply_jax_settings()
 
 from hypothesis import HealthCheck, settings  # noqa: E402
 
