@@ -9,7 +9,7 @@
   are a few tens of microseconds each and the caller always waits for the
   answer, so the hand-off is pure cost, and the worker often runs on the
   other core, whose cache does not hold the model's arrays. Run on the
-  calling thread, the interpolation models' evaluations took 0.55-0.75 of
+  calling thread, the interpolation models' evaluations took 0.39-0.77 of
   their time (200k-node benchmark graph, k = 40-50, medians of alternating
   processes on the 2-core development machine; ``experiments/README.md``).
 
