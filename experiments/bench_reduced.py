@@ -177,8 +177,8 @@ def main() -> None:
             settings = ReductionSettings(method=method, samples=regional_samples, regions=regions, **regional)
             model = build_model(problem, settings, progress=False)
             used = len({model.region_of(theta) for theta in fresh})
-            record = add("regional", model, f" ({len(model.parts)} regions, r = {settings.rows}, {regional_samples} samples; "
-                                            f"{used} used by the fresh points)")
+            record = add("regional", model, f" ({len(model.parts)} regions, r = {settings.rows}, "
+                                            f"{regional_samples} samples; {used} used by the fresh points)")
             record.update(regions=len(model.parts), samples=regional_samples, regions_used=used, rows=settings.rows)
 
     # Every timing side by side: each round solves every fresh point in full and runs every reduced

@@ -1,4 +1,5 @@
-"""The JAX settings fitrank relies on, applied by every module that runs JAX code.
+"""The JAX settings fitrank relies on, applied on import by the lowest modules that run JAX code
+(weightings.py, losses.py); every other module that runs JAX code imports one of them.
 
 * **64-bit floats** (``jax_enable_x64``): PageRank scores of a large graph
   differ in their seventh digit, and a line search near the optimum compares

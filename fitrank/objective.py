@@ -35,13 +35,10 @@ import numpy as np
 
 from fitrank.errors import FitrankInputError
 from fitrank.graph import Graph, Pairs
-from fitrank.jax_settings import apply_jax_settings
 from fitrank.losses import Loss, get_loss
 from fitrank.metrics import pair_accuracy
 from fitrank.pagerank import WalkOperator, adjoint_gradient, solve_operator, walk_operator
 from fitrank.weightings import Weighting
-
-apply_jax_settings()
 
 
 @dataclass(frozen=True)

@@ -42,12 +42,9 @@ from tqdm.auto import tqdm
 from fitrank import interrupt
 from fitrank.errors import FitrankInputError
 from fitrank.graph import Graph, Pairs
-from fitrank.jax_settings import apply_jax_settings
 from fitrank.objective import (Objective, ObjectiveSpec, batch_arrays, full_accuracy, full_objective,
                                reduced_accuracy, reduced_objective)
 from fitrank.weightings import Weighting
-
-apply_jax_settings()
 
 OPTIMIZERS = ("lbfgs", "adam", "sgd")
 HISTORY_COLUMNS = ("step", "loss", "grad_norm", "valid_acc", "seconds")
